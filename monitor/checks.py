@@ -1,0 +1,353 @@
+"""Allocation-ratio checks: turn hourly unit counts into findings.
+
+Input is the tidy frame of new units per experiment x variant x hour (x segment)
+for each pipeline stage, as pulled by :mod:`monitor.pull`. Checks:
+
+``srm``
+    Per stage. Units are attributed to the ramp phase of their first assignment
+    and tested against that phase's designed weights. The alert is driven by the
+    anytime-valid Dirichlet-multinomial e-process (:func:`monitor.stats.allocation.srm_sequential`),
+    evaluated at every hour since the experiment started, so hourly monitoring does
+    not inflate false alarms; phases multiply. The fixed-horizon Pearson
+    chi-square is reported beside it. When the chi-square p-value is below alpha
+    but the e-value has not reached 1/alpha, the finding is ``warn`` and says why.
+``leakage``
+    Share of units seen in more than one variant (first stage only).
+``unknown_variant``
+    Units whose variant is NULL or not in the registry (first stage only).
+``freshness``
+    No new units for longer than ``freshness_gap_hours`` while the same hours of
+    the previous days brought enough units that silence is implausible
+    (Poisson probability of zero arrivals below alpha).
+``design``
+    The registry describes the experiment in a way no check can use.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from datetime import datetime, timedelta
+
+import numpy as np
+import pandas as pd
+from scipy import stats as sps
+
+from monitor.config import CheckConfig
+from monitor.findings import Finding
+from monitor.registry import Experiment, RegistryProblem
+from monitor.stats.allocation import DEFAULT_CONCENTRATIONS, chisquare_gof, srm_sequential
+
+__all__ = ["allocation_findings", "design_findings", "hourly_by_variant"]
+
+HOUR = timedelta(hours=1)
+
+
+def _floor_hour(t: datetime) -> datetime:
+    return t.replace(minute=0, second=0, microsecond=0)
+
+
+def _ceil_hour(t: datetime) -> datetime:
+    f = _floor_hour(t)
+    return f if f == t else f + HOUR
+
+
+def _fmt_share(shares: dict[str, float]) -> str:
+    return "/".join(f"{100 * s:.1f}" for s in shares.values())
+
+
+def _fmt_p(p: float) -> str:
+    return f"{p:.2g}" if p >= 1e-300 else "<1e-300"
+
+
+def _fmt_e(log_e: float) -> str:
+    if log_e < math.log(1e6):
+        return f"{math.exp(log_e):,.0f}" if log_e > math.log(10) else f"{math.exp(log_e):.2g}"
+    log10 = log_e / math.log(10)
+    exponent = math.floor(log10)
+    return f"{10 ** (log10 - exponent):.1f}e{exponent}"
+
+
+def hourly_by_variant(frame: pd.DataFrame) -> pd.DataFrame:
+    """Sum a counts frame over segments: experiment x variant x hour."""
+    if frame.empty:
+        return pd.DataFrame({"experiment": [], "variant": [], "hour": [], "units": [], "leaked": []})
+    g = frame.assign(variant=frame["variant"].astype(object).where(frame["variant"].notna(), None))
+    return (
+        g.groupby(["experiment", "variant", "hour"], dropna=False, sort=False)[["units", "leaked"]]
+        .sum()
+        .reset_index()
+    )
+
+
+def design_findings(problems: Sequence[RegistryProblem]) -> list[Finding]:
+    return [
+        Finding(p.experiment, "design", "registry", "alert", f"registry: {p.message}; other checks skipped",
+                {"problem": p.message})
+        for p in problems
+    ]
+
+
+# -- SRM ------------------------------------------------------------------------------------
+
+
+def _phase_grid(exp: Experiment, t0: datetime, n_hours: int) -> tuple[np.ndarray, np.ndarray]:
+    """Phase number and weight row per hour; 0 / zero weights where an hour is not
+    wholly inside one phase (before the start, in a gap, or straddling a ramp)."""
+    phase = np.zeros(n_hours, dtype=np.int64)
+    weights = np.zeros((n_hours, len(exp.variants)))
+    starts = t0 + HOUR * np.arange(n_hours)
+    for ph in exp.phases:
+        lo = max(0, math.ceil((ph.start - t0) / HOUR))
+        hi = n_hours if ph.end is None else min(n_hours, math.floor((ph.end - t0) / HOUR))
+        if hi > lo:
+            phase[lo:hi] = ph.number
+            weights[lo:hi] = exp.weight_vector(ph)
+    del starts
+    return phase, weights
+
+
+def _srm_findings(
+    exps: Sequence[Experiment], hourly: pd.DataFrame, source: str, as_of: datetime, cfg: CheckConfig
+) -> list[Finding]:
+    if not exps:
+        return []
+    E = len(exps)
+    K = max(len(e.variants) for e in exps)
+    t0s = [_floor_hour(e.start) for e in exps]
+    t_end = _ceil_hour(as_of)
+    T = max(1, max(int((t_end - t) / HOUR) for t in t0s))
+    inc = np.zeros((E, T, K), dtype=np.int64)
+    w = np.zeros((E, T, K))
+    ph = np.zeros((E, T), dtype=np.int64)
+    outside = np.zeros(E, dtype=np.int64)
+    index = {e.id: i for i, e in enumerate(exps)}
+    for i, e in enumerate(exps):
+        n_h = int((t_end - t0s[i]) / HOUR)
+        phase_i, w_i = _phase_grid(e, t0s[i], n_h)
+        ph[i, :n_h] = phase_i
+        w[i, :n_h, : len(e.variants)] = w_i
+    if not hourly.empty:
+        known = hourly[hourly["experiment"].isin(index)]
+        for exp_id, rows in known.groupby("experiment", sort=False):
+            i = index[str(exp_id)]
+            e = exps[i]
+            slot = {v: k for k, v in enumerate(e.variants)}
+            rows = rows[rows["variant"].isin(slot)]
+            if rows.empty:
+                continue
+            t_idx = ((pd.to_datetime(rows["hour"], utc=True) - pd.Timestamp(t0s[i])) / pd.Timedelta(hours=1)).to_numpy().astype(np.int64)
+            k_idx = rows["variant"].map(slot).to_numpy().astype(np.int64)
+            u = rows["units"].to_numpy().astype(np.int64)
+            ok = (t_idx >= 0) & (t_idx < T)
+            np.add.at(inc[i], (t_idx[ok], k_idx[ok]), u[ok])
+    # units in hours that belong to no single phase are excluded (reported)
+    no_phase = ph == 0
+    outside = (inc * no_phase[:, :, None]).sum(axis=(1, 2))
+    inc[no_phase] = 0
+    # phase ids must be non-decreasing: carry the previous phase id through gaps
+    ph_ff = np.maximum.accumulate(np.where(no_phase, 0, ph), axis=1)
+    ph_ff = np.where(ph_ff == 0, 1, ph_ff)
+    conc = tuple(cfg.srm_prior_concentrations) if cfg.srm_prior_concentrations else DEFAULT_CONCENTRATIONS
+    seq = srm_sequential(inc, w, ph_ff, alpha=cfg.alpha, concentrations=conc)
+
+    out: list[Finding] = []
+    for i, e in enumerate(exps):
+        kv = len(e.variants)
+        phase_stats = []
+        rows_counts, rows_w = [], []
+        for p in e.phases:
+            mask = ph[i] == p.number
+            if not mask.any():
+                continue
+            rows_counts.append(inc[i, mask, :kv].sum(axis=0))
+            rows_w.append(e.weight_vector(p))
+            phase_stats.append(p)
+        total_units = inc[i, :, :kv].sum(axis=0)
+        units_json = {v: int(total_units[k]) for k, v in enumerate(e.variants)}
+        stats: dict[str, object] = {
+            "units": units_json,
+            "units_outside_phases": int(outside[i]),
+            "alpha": cfg.alpha,
+            "threshold_e_value": 1.0 / cfg.alpha,
+            "log_e_value": float(seq.log_e_final[i]),
+            "log_e_value_max": float(seq.log_e_max[i]),
+            "e_value": math.exp(min(seq.log_e_final[i], 700.0)) if seq.log_e_final[i] < 700 else None,
+            "first_crossed_at": (t0s[i] + HOUR * (int(seq.first_cross[i]) + 1)) if seq.crossed[i] else None,
+            "phases": [],
+        }
+        worst_dev, worst_p, current = 0.0, 1.0, None
+        chi_total, df_total = 0.0, 0
+        if rows_counts:
+            chi = chisquare_gof(np.array(rows_counts), np.array(rows_w))
+            for j, p in enumerate(phase_stats):
+                n = int(np.sum(rows_counts[j]))
+                obs = {v: float(chi.observed_share[j, k]) for k, v in enumerate(e.variants)}
+                expd = {v: float(chi.expected_share[j, k]) for k, v in enumerate(e.variants)}
+                pval = float(chi.pvalue[j])
+                entry = {
+                    "phase": p.number, "start": p.start, "end": p.end, "n": n,
+                    "units": {v: int(rows_counts[j][k]) for k, v in enumerate(e.variants)},
+                    "observed_share": obs, "expected_share": expd,
+                    "chi2": float(chi.statistic[j]), "df": int(chi.df[j]), "p_value": pval,
+                }
+                stats["phases"].append(entry)  # type: ignore[attr-defined]
+                if n > 0:
+                    current = entry
+                chi_total += float(chi.statistic[j])
+                df_total += int(chi.df[j])
+                if n >= cfg.srm_min_units:
+                    worst_p = min(worst_p, pval)
+                    dev = max(abs(obs[v] / expd[v] - 1.0) for v in e.variants if expd[v] > 0)
+                    worst_dev = max(worst_dev, dev)
+        p_comb = float(sps.chi2.sf(chi_total, df_total)) if df_total > 0 else 1.0
+        stats.update({"chi2": chi_total, "df": df_total, "p_value": p_comb, "max_relative_deviation": worst_dev})
+        phase_no = current["phase"] if current else None
+        where = f"stage {source}"
+        if seq.crossed[i]:
+            assert current is not None
+            crossed_at = stats["first_crossed_at"]
+            summary = (
+                f"SRM at {where}: shares {_fmt_share(current['observed_share'])}% vs designed "
+                f"{_fmt_share(current['expected_share'])}% (phase {phase_no}, n={current['n']:,}); "
+                f"e-value {_fmt_e(seq.log_e_final[i])} passed 1/alpha={1 / cfg.alpha:,.0f} at "
+                f"{crossed_at:%Y-%m-%d %H:%M} UTC; chi-square p={_fmt_p(p_comb)}"
+            )
+            out.append(Finding(e.id, "srm", source, "alert", summary, stats, phase_no,
+                               critical=worst_dev >= cfg.srm_critical_deviation))
+        elif worst_p < cfg.alpha:
+            summary = (
+                f"possible SRM at {where}: chi-square p={_fmt_p(worst_p)} is below alpha={cfg.alpha:g}, but the "
+                f"always-valid e-value is {_fmt_e(seq.log_e_final[i])} of the {1 / cfg.alpha:,.0f} needed; a one-look "
+                f"p-value overstates the evidence under hourly monitoring, so this is a warning, not an alert yet"
+            )
+            out.append(Finding(e.id, "srm", source, "warn", summary, stats, phase_no))
+        else:
+            n_all = int(total_units.sum())
+            summary = (
+                f"split as designed at {where} (n={n_all:,}, e-value {_fmt_e(seq.log_e_final[i])}, "
+                f"chi-square p={_fmt_p(p_comb)})"
+            )
+            out.append(Finding(e.id, "srm", source, "ok", summary, stats, phase_no))
+    return out
+
+
+# -- leakage, unknown variants, freshness -------------------------------------------------
+
+
+def _leakage(e: Experiment, rows: pd.DataFrame, source: str, cfg: CheckConfig) -> Finding:
+    units = int(rows["units"].sum()) if len(rows) else 0
+    leaked = int(rows["leaked"].sum()) if len(rows) else 0
+    total = units + leaked
+    share = leaked / total if total else 0.0
+    by_var = rows.groupby("variant", dropna=False)["leaked"].sum() if len(rows) else pd.Series(dtype="int64")
+    stats = {"leaked_units": leaked, "units": total, "share": share,
+             "leaked_by_first_variant": {("(null)" if v is None or v != v else str(v)): int(n) for v, n in by_var.items() if n},
+             "warn_share": cfg.leakage_warn_share, "alert_share": cfg.leakage_alert_share}
+    if total and share >= cfg.leakage_alert_share and leaked > 0:
+        return Finding(e.id, "leakage", source, "alert",
+                       f"{leaked:,} of {total:,} units ({100 * share:.2f}%) were seen in more than one variant; they are excluded from every count",
+                       stats, critical=share >= cfg.critical_factor * cfg.leakage_alert_share)
+    if total and share >= cfg.leakage_warn_share and leaked > 0:
+        return Finding(e.id, "leakage", source, "warn",
+                       f"{leaked:,} of {total:,} units ({100 * share:.3f}%) were seen in more than one variant (excluded)", stats)
+    return Finding(e.id, "leakage", source, "ok", f"{leaked:,} units seen in more than one variant", stats)
+
+
+def _unknown(e: Experiment, rows: pd.DataFrame, source: str, cfg: CheckConfig) -> Finding:
+    if len(rows):
+        is_null = rows["variant"].isna()
+        unknown = ~is_null & ~rows["variant"].isin(e.variants)
+        n_null = int(rows.loc[is_null, ["units", "leaked"]].to_numpy().sum())
+        by_name = rows[unknown].groupby("variant")[["units", "leaked"]].sum().sum(axis=1)
+        total = int(rows[["units", "leaked"]].to_numpy().sum())
+    else:
+        n_null, by_name, total = 0, pd.Series(dtype="int64"), 0
+    n_unknown = int(by_name.sum())
+    bad = n_null + n_unknown
+    share = bad / total if total else 0.0
+    stats = {"null_variant_units": n_null, "unknown_variant_units": {str(k): int(v) for k, v in by_name.items()},
+             "units": total, "share": share, "known_variants": list(e.variants)}
+    if bad == 0:
+        return Finding(e.id, "unknown_variant", source, "ok", "every unit has a designed variant", stats)
+    parts = []
+    if n_null:
+        parts.append(f"{n_null:,} with a NULL variant")
+    if n_unknown:
+        names = ", ".join(repr(str(k)) for k in list(by_name.index)[:5])
+        parts.append(f"{n_unknown:,} in variants not in the registry ({names})")
+    summary = f"{' and '.join(parts)}: {100 * share:.2f}% of units; they are left out of the SRM test"
+    status = "alert" if share >= cfg.unknown_variant_alert_share else "warn"
+    return Finding(e.id, "unknown_variant", source, status, summary, stats,
+                   critical=share >= cfg.critical_factor * cfg.unknown_variant_alert_share)
+
+
+def _freshness(e: Experiment, rows: pd.DataFrame, source: str, as_of: datetime, cfg: CheckConfig) -> Finding:
+    start = e.start
+    gap_limit = timedelta(hours=cfg.freshness_gap_hours)
+    hours = pd.to_datetime(rows["hour"], utc=True) if len(rows) else pd.Series([], dtype="datetime64[ns, UTC]")
+    totals = (rows["units"] + rows["leaked"]).groupby(hours).sum() if len(rows) else pd.Series(dtype="int64")
+    totals = totals[totals > 0]
+    live_for = as_of - start
+    stats: dict[str, object] = {"gap_limit_hours": cfg.freshness_gap_hours}
+    if totals.empty:
+        stats.update({"last_units_at": None, "gap_hours": live_for / HOUR, "expected_units_in_gap": None})
+        if live_for >= gap_limit:
+            return Finding(e.id, "freshness", source, "alert",
+                           f"no units have arrived since the experiment started {live_for / HOUR:.0f} h ago", stats,
+                           critical=live_for >= cfg.critical_factor * gap_limit)
+        return Finding(e.id, "freshness", source, "ok", "started less than the gap limit ago; no units yet", stats)
+    last_hour = totals.index.max().to_pydatetime()
+    data_until = min(as_of, last_hour + HOUR)
+    gap = as_of - data_until
+    gap_h = max(gap / HOUR, 0.0)
+    # expected arrivals in the silent hours, from the same hours of the previous days
+    gap_start = _ceil_hour(data_until)
+    silent = [gap_start + HOUR * k for k in range(int(math.ceil(gap_h)))]
+    expected = 0.0
+    days = cfg.freshness_baseline_days
+    for h in silent:
+        past = [h - timedelta(days=d) for d in range(1, days + 1)]
+        past = [p for p in past if p >= _floor_hour(start) and p < gap_start]
+        if past:
+            expected += float(totals.reindex(pd.DatetimeIndex(past)).fillna(0).mean())
+    p_silence = math.exp(-expected)
+    stats.update({"last_units_at": last_hour, "gap_hours": gap_h, "expected_units_in_gap": expected,
+                  "p_silence": p_silence})
+    if gap >= gap_limit and p_silence < cfg.alpha:
+        return Finding(e.id, "freshness", source, "alert",
+                       f"no new units for {gap_h:.0f} h (last at {last_hour:%Y-%m-%d %H:00} UTC); the same hours of the "
+                       f"previous days brought {expected:,.0f} units", stats,
+                       critical=gap >= cfg.critical_factor * gap_limit)
+    if gap >= gap_limit and p_silence < 0.05:
+        return Finding(e.id, "freshness", source, "warn",
+                       f"no new units for {gap_h:.0f} h; {expected:.1f} were expected, so this may be a lull", stats)
+    return Finding(e.id, "freshness", source, "ok",
+                   f"last new units at {last_hour:%Y-%m-%d %H:00} UTC", stats)
+
+
+def allocation_findings(
+    experiments: Sequence[Experiment],
+    counts_by_source: dict[str, pd.DataFrame],
+    first_source: str,
+    as_of: datetime,
+    cfg: CheckConfig,
+) -> list[Finding]:
+    """All allocation-ratio findings for ``experiments`` (live ones) as of ``as_of``.
+
+    ``counts_by_source`` maps each stage name to its counts frame (columns
+    experiment, variant, hour, segment, units, leaked; hours aware UTC).
+    """
+    out: list[Finding] = []
+    hourly = {name: hourly_by_variant(df) for name, df in counts_by_source.items()}
+    for name, frame in hourly.items():
+        out.extend(_srm_findings(experiments, frame, name, as_of, cfg))
+    first = hourly[first_source]
+    by_exp = {str(k): g for k, g in first.groupby("experiment", sort=False)} if len(first) else {}
+    empty = first.iloc[0:0]
+    for e in experiments:
+        rows = by_exp.get(e.id, empty)
+        out.append(_leakage(e, rows, first_source, cfg))
+        out.append(_unknown(e, rows, first_source, cfg))
+        out.append(_freshness(e, rows, first_source, as_of, cfg))
+    return out

@@ -1,0 +1,323 @@
+"""Load and validate the YAML configuration.
+
+The file is validated once, at load time, into frozen objects: a typo, a missing
+key or a value of the wrong kind is a :class:`~monitor.errors.ConfigError` whose
+single line names the file, the key and what was expected. ``${NAME}`` (or
+``${NAME:-default}``) anywhere in a string value is replaced by the environment
+variable, so secrets never have to be written in the file.
+
+Every key is documented in ``config/example.yaml``; ``tests/test_docs.py`` fails
+when a key exists here but not there.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import re
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Annotated, Any, Literal
+
+import yaml
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+
+from monitor.errors import ConfigError
+
+__all__ = ["Config", "load_config", "parse_config"]
+
+_ENV_RE = re.compile(r"\$\{([A-Za-z_][A-Za-z0-9_]*)(?::-([^}]*))?\}")
+_NAME_RE = re.compile(r"^[A-Za-z0-9_][A-Za-z0-9_.-]*$")
+
+
+class _Model(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class WarehouseConfig(_Model):
+    url: str
+    """Any SQLAlchemy URL. Opened read-only where the engine allows it."""
+    query_timeout_seconds: Annotated[float, Field(gt=0)] = 600.0
+
+
+class StateConfig(_Model):
+    url: str | None = None
+    """SQLAlchemy URL of the state store; default a SQLite file beside the config."""
+
+
+class RegistryColumns(_Model):
+    experiment: str = "experiment_id"
+    variant: str = "variant"
+    weight: str = "weight"
+    phase: str | None = "phase"
+    phase_start: str = "phase_start"
+    phase_end: str | None = "phase_end"
+    is_control: str | None = "is_control"
+    status: str | None = "status"
+    owner: str | None = "owner"
+    title: str | None = "title"
+
+
+class InlinePhase(_Model):
+    start: datetime
+    end: datetime | None = None
+    weights: dict[str, float]
+
+
+class InlineExperiment(_Model):
+    experiment: str
+    control: str
+    phases: list[InlinePhase] = Field(min_length=1)
+    status: str = "running"
+    owner: str | None = None
+    title: str | None = None
+
+
+class RegistryConfig(_Model):
+    table: str | None = None
+    sql: str | None = None
+    inline: list[InlineExperiment] | None = None
+    columns: RegistryColumns = RegistryColumns()
+    live_status: list[str] = ["running"]
+    control_names: list[str] = ["control"]
+
+    @model_validator(mode="after")
+    def _one_source(self) -> RegistryConfig:
+        given = [k for k in ("table", "sql", "inline") if getattr(self, k) is not None]
+        if len(given) != 1:
+            raise ValueError(f"give exactly one of 'table', 'sql' or 'inline' (got {given or 'none'})")
+        return self
+
+
+class AssignmentColumns(_Model):
+    unit: str = "unit_id"
+    experiment: str = "experiment_id"
+    variant: str = "variant"
+    timestamp: str = "assigned_at"
+
+
+class SourceConfig(_Model):
+    """A table (or SQL query) of assignment/exposure rows, one row per exposure."""
+
+    name: str = "assigned"
+    table: str | None = None
+    sql: str | None = None
+    columns: AssignmentColumns | None = None
+    segments: list[str] | None = None
+
+    @field_validator("name")
+    @classmethod
+    def _name(cls, v: str) -> str:
+        if not _NAME_RE.match(v):
+            raise ValueError("must be letters, digits, '_', '-' or '.'")
+        return v
+
+    @model_validator(mode="after")
+    def _one_source(self) -> SourceConfig:
+        if (self.table is None) == (self.sql is None):
+            raise ValueError("give exactly one of 'table' or 'sql'")
+        return self
+
+
+class CheckConfig(_Model):
+    alpha: Annotated[float, Field(gt=0, lt=0.5)] = 0.001
+    srm_prior_concentrations: list[Annotated[float, Field(gt=0)]] | None = None
+    srm_min_units: Annotated[int, Field(ge=0)] = 100
+    leakage_warn_share: Annotated[float, Field(ge=0, le=1)] = 0.001
+    leakage_alert_share: Annotated[float, Field(ge=0, le=1)] = 0.01
+    unknown_variant_alert_share: Annotated[float, Field(ge=0, le=1)] = 0.01
+    freshness_gap_hours: Annotated[float, Field(gt=0)] = 6.0
+    freshness_baseline_days: Annotated[int, Field(ge=1, le=60)] = 7
+    srm_critical_deviation: Annotated[float, Field(gt=0, lt=1)] = 0.1
+    critical_factor: Annotated[float, Field(gt=1)] = 5.0
+
+    @model_validator(mode="after")
+    def _order(self) -> CheckConfig:
+        if self.leakage_warn_share > self.leakage_alert_share:
+            raise ValueError("leakage_warn_share must not exceed leakage_alert_share")
+        return self
+
+
+class PullConfig(_Model):
+    lookback_hours: Annotated[int, Field(ge=0, le=24 * 90)] = 48
+
+
+class Config(_Model):
+    warehouse: WarehouseConfig
+    state: StateConfig = StateConfig()
+    registry: RegistryConfig
+    assignments: SourceConfig
+    stages: list[SourceConfig] = []
+    checks: CheckConfig = CheckConfig()
+    pull: PullConfig = PullConfig()
+    timezone: str = "UTC"
+    output: Literal["text", "json"] = "text"
+    path: Path | None = None
+    """Where the file was read from (set by :func:`load_config`)."""
+
+    @model_validator(mode="after")
+    def _stages(self) -> Config:
+        names = [self.assignments.name] + [s.name for s in self.stages]
+        dupes = sorted({n for n in names if names.count(n) > 1})
+        if dupes:
+            raise ValueError(f"stage names must be unique; repeated: {', '.join(dupes)}")
+        return self
+
+    # -- derived views --------------------------------------------------------------
+    @property
+    def sources(self) -> list[SourceConfig]:
+        """The assignment source first, then each extra pipeline stage, with the
+        assignment source's column mapping and segments filled in where a stage
+        gives none."""
+        base_cols = self.assignments.columns or AssignmentColumns()
+        base_segs = self.assignments.segments or []
+        out = [self.assignments.model_copy(update={"columns": base_cols, "segments": base_segs})]
+        for s in self.stages:
+            out.append(
+                s.model_copy(
+                    update={
+                        "columns": s.columns or base_cols,
+                        "segments": s.segments if s.segments is not None else base_segs,
+                    }
+                )
+            )
+        return out
+
+    @property
+    def where(self) -> str:
+        return str(self.path) if self.path else "<config>"
+
+
+# -- loading ---------------------------------------------------------------------------
+
+
+def _interpolate(value: Any, where: str, key: str) -> Any:
+    if isinstance(value, str):
+
+        def sub(m: re.Match[str]) -> str:
+            name, default = m.group(1), m.group(2)
+            got = os.environ.get(name)
+            if got is None:
+                if default is not None:
+                    return default
+                raise ConfigError(f"{where}: {key}: environment variable {name} is not set")
+            return got
+
+        return _ENV_RE.sub(sub, value)
+    if isinstance(value, dict):
+        return {k: _interpolate(v, where, f"{key}.{k}" if key else str(k)) for k, v in value.items()}
+    if isinstance(value, list):
+        return [_interpolate(v, where, f"{key}[{i}]") for i, v in enumerate(value)]
+    return value
+
+
+def _loc(loc: tuple[Any, ...]) -> str:
+    out = ""
+    for part in loc:
+        if isinstance(part, int):
+            out += f"[{part}]"
+        else:
+            out += ("." if out else "") + str(part)
+    return out or "(top level)"
+
+
+def _format_error(where: str, exc: ValidationError) -> str:
+    first = exc.errors()[0]
+    loc = _loc(tuple(p for p in first["loc"] if not str(p).startswith("function-")))
+    msg = first["msg"]
+    if first["type"] == "extra_forbidden":
+        msg = "unknown key (check the spelling; every key is listed in config/example.yaml)"
+    elif first["type"] == "missing":
+        msg = "required key is missing"
+    msg = msg.removeprefix("Value error, ")
+    more = len(exc.errors()) - 1
+    tail = f" (and {more} more problem{'s' if more > 1 else ''})" if more else ""
+    return f"{where}: {loc}: {msg}{tail}"
+
+
+def _resolve_file_url(url: str, base: Path) -> str:
+    """Make ``sqlite:///rel.db`` and ``duckdb:///rel.duckdb`` relative to the config file."""
+    m = re.match(r"^(sqlite|duckdb)(\+\w+)?:///(.*)$", url)
+    if not m:
+        return url
+    rest = m.group(3)
+    if not rest or rest.startswith("/") or rest.startswith(":memory:"):
+        return url
+    path_part, sep, query = rest.partition("?")
+    absolute = (base / path_part).resolve()
+    return f"{m.group(1)}{m.group(2) or ''}:///{absolute}{sep}{query}"
+
+
+def _check_semantics(cfg: Config, where: str) -> None:
+    for i, exp in enumerate(cfg.registry.inline or []):
+        key = f"registry.inline[{i}]"
+        for j, ph in enumerate(exp.phases):
+            total = sum(ph.weights.values())
+            if not ph.weights or any((w < 0 or not math.isfinite(w)) for w in ph.weights.values()):
+                raise ConfigError(f"{where}: {key}.phases[{j}].weights: experiment {exp.experiment!r}: weights must be non-negative numbers")
+            if abs(total - 1.0) > 1e-6:
+                raise ConfigError(
+                    f"{where}: {key}.phases[{j}].weights: experiment {exp.experiment!r}: weights sum to {total:g}, expected 1"
+                )
+            if exp.control not in ph.weights:
+                raise ConfigError(
+                    f"{where}: {key}.control: experiment {exp.experiment!r}: control {exp.control!r} is not a variant of phase {j + 1}"
+                )
+    try:
+        from zoneinfo import ZoneInfo
+
+        ZoneInfo(cfg.timezone)
+    except Exception as exc:  # ZoneInfoNotFoundError, ValueError
+        raise ConfigError(f"{where}: timezone: unknown time zone {cfg.timezone!r}") from exc
+    if cfg.checks.srm_prior_concentrations is not None and not cfg.checks.srm_prior_concentrations:
+        raise ConfigError(f"{where}: checks.srm_prior_concentrations: give at least one value or leave it out")
+
+
+def parse_config(data: Any, *, where: str = "<config>", base_dir: Path | None = None) -> Config:
+    """Validate an already-parsed mapping (as from YAML) into a :class:`Config`."""
+    if not isinstance(data, dict):
+        raise ConfigError(f"{where}: the file must hold a mapping of keys (warehouse, registry, assignments, ...)")
+    data = _interpolate(data, where, "")
+    base = base_dir or Path.cwd()
+    try:
+        cfg = Config.model_validate(data)
+    except ValidationError as exc:
+        raise ConfigError(_format_error(where, exc)) from None
+    wh = cfg.warehouse.model_copy(update={"url": _resolve_file_url(cfg.warehouse.url, base)})
+    state_url = cfg.state.url or f"sqlite:///{(base / 'expwatch-state.sqlite').resolve()}"
+    st = cfg.state.model_copy(update={"url": _resolve_file_url(state_url, base)})
+    cfg = cfg.model_copy(update={"warehouse": wh, "state": st})
+    _check_semantics(cfg, where)
+    return cfg
+
+
+def load_config(path: str | os.PathLike[str]) -> Config:
+    """Read, interpolate and validate a YAML configuration file.
+
+    Raises
+    ------
+    ConfigError
+        One line naming the file, the key and what was expected.
+    """
+    p = Path(path)
+    where = str(p)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise ConfigError(f"{where}: no such file") from None
+    except OSError as exc:
+        raise ConfigError(f"{where}: cannot be read ({exc.strerror})") from None
+    try:
+        data = yaml.safe_load(text)
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        at = f" at line {mark.line + 1}, column {mark.column + 1}" if mark else ""
+        problem = getattr(exc, "problem", None) or "invalid YAML"
+        raise ConfigError(f"{where}: not valid YAML{at}: {problem}") from None
+    cfg = parse_config(data, where=where, base_dir=p.resolve().parent)
+    return cfg.model_copy(update={"path": p})
+
+
+def utc(dt: datetime) -> datetime:
+    """Aware UTC datetime; a naive value is taken to be UTC already."""
+    return dt.replace(tzinfo=timezone.utc) if dt.tzinfo is None else dt.astimezone(timezone.utc)

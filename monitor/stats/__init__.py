@@ -1,0 +1,1 @@
+"""Statistics core: vectorised numpy/scipy functions with no I/O."""

@@ -1,0 +1,122 @@
+"""Render the SQL templates in ``sql/``.
+
+Templates are Jinja2 with ``StrictUndefined``: a variable a template needs and
+the caller did not give fails loudly. Two rules keep them safe:
+
+* every identifier that comes from the config (table, column) is quoted by the
+  SQLAlchemy dialect here, through :class:`Quoter`, before a template sees it;
+* every value (times, experiment ids) is a bind parameter (``:as_of``), never
+  text pasted into the SQL.
+
+The templates ship inside the installed package (``monitor/sql``); in a source
+checkout they are read from the top-level ``sql/`` folder.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from importlib import resources
+from pathlib import Path
+from typing import Any
+
+import jinja2
+from sqlalchemy.engine import Dialect
+
+from monitor.config import RegistryConfig, SourceConfig
+from monitor.errors import ConfigError
+
+__all__ = ["Quoter", "render", "template_names", "source_context", "registry_context"]
+
+
+def _template_dir() -> Path:
+    try:
+        pkg = resources.files("monitor.sql")
+        path = Path(str(pkg))
+        if (path / "assignments.sql.j2").is_file():
+            return path
+    except ModuleNotFoundError:
+        pass
+    return Path(__file__).resolve().parent.parent / "sql"
+
+
+_ENV = jinja2.Environment(
+    loader=jinja2.FileSystemLoader(str(_template_dir())),
+    undefined=jinja2.StrictUndefined,
+    autoescape=False,
+    trim_blocks=True,
+    lstrip_blocks=True,
+    keep_trailing_newline=True,
+)
+
+
+def template_names() -> list[str]:
+    """The query templates (macro files starting with ``_`` excluded)."""
+    return sorted(n for n in _ENV.list_templates() if n.endswith(".sql.j2") and not n.startswith("_"))
+
+
+def render(name: str, dialect: Dialect | str, **context: Any) -> str:
+    """Render template ``name`` (e.g. ``"assignments.sql.j2"``) for ``dialect``."""
+    dname = dialect if isinstance(dialect, str) else dialect.name
+    try:
+        tpl = _ENV.get_template(name)
+        sql = tpl.render(dialect=dname, **context)
+    except jinja2.UndefinedError as exc:
+        raise ConfigError(f"SQL template {name}: {exc.message}") from exc
+    except jinja2.TemplateError as exc:
+        raise ConfigError(f"SQL template {name}: {exc}") from exc
+    return "\n".join(line.rstrip() for line in sql.strip().splitlines()) + "\n"
+
+
+@dataclass(frozen=True)
+class Quoter:
+    """Quote identifiers with the dialect's own rules."""
+
+    dialect: Dialect
+
+    def ident(self, name: str) -> str:
+        return self.dialect.identifier_preparer.quote_identifier(name)
+
+    def table(self, dotted: str) -> str:
+        """``schema.table`` (or ``catalog.schema.table``): each part quoted."""
+        parts = [p for p in dotted.split(".")]
+        if not all(parts):
+            raise ConfigError(f"table name {dotted!r} has an empty part")
+        return ".".join(self.ident(p) for p in parts)
+
+    def from_clause(self, table: str | None, sql: str | None, alias: str) -> str:
+        if table is not None:
+            return self.table(table)
+        assert sql is not None
+        body = sql.strip().rstrip(";")
+        return f"(\n{body}\n) AS {self.ident(alias)}"
+
+
+def source_context(src: SourceConfig, q: Quoter) -> dict[str, Any]:
+    """Template variables for an assignment source (or pipeline stage)."""
+    assert src.columns is not None
+    cols = src.columns
+    return {
+        "source": q.from_clause(src.table, src.sql, "user_source"),
+        "cols": {
+            "unit": q.ident(cols.unit),
+            "experiment": q.ident(cols.experiment),
+            "variant": q.ident(cols.variant),
+            "timestamp": q.ident(cols.timestamp),
+        },
+        "segments": [
+            {"column": q.ident(seg), "alias": q.ident(f"seg_{i}")} for i, seg in enumerate(src.segments or [])
+        ],
+    }
+
+
+_REGISTRY_ALIASES = ("experiment", "variant", "weight", "phase", "phase_start", "phase_end", "is_control", "status", "owner", "title")
+
+
+def registry_context(reg: RegistryConfig, q: Quoter) -> dict[str, Any]:
+    mapping = reg.columns
+    columns = []
+    for alias in _REGISTRY_ALIASES:
+        col = getattr(mapping, alias)
+        if col is not None:
+            columns.append((q.ident(alias), q.ident(col)))
+    return {"source": q.from_clause(reg.table, reg.sql, "user_registry"), "columns": columns}

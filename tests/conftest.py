@@ -1,0 +1,108 @@
+"""Shared fixtures: the demo warehouse (built once), a PostgreSQL database on
+loopback, and a non-UTC local time zone for every test.
+
+PostgreSQL tests skip when no server answers on 127.0.0.1:5432, unless
+EXPWATCH_REQUIRE_POSTGRES=1 (CI sets it), which turns the skip into a failure.
+"""
+
+from __future__ import annotations
+
+import io
+import os
+import time
+import uuid
+from collections.abc import Iterator
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+# Every test runs with a local zone that is not UTC and has DST, so any code that
+# silently uses local time shows up.
+os.environ["TZ"] = "Europe/Berlin"
+time.tzset()
+
+PG_DSN = os.environ.get("EXPWATCH_TEST_PG", "postgresql+psycopg://postgres@127.0.0.1:5432/test")
+
+
+@pytest.fixture(scope="session")
+def demo(tmp_path_factory: pytest.TempPathFactory):
+    """The demo warehouse as a DuckDB file, plus its summary and a config path."""
+    from monitor.demo import build_demo_warehouse
+    from monitor.demo_config import write_demo_config
+
+    d = tmp_path_factory.mktemp("demo")
+    summary = build_demo_warehouse(d / "warehouse.duckdb")
+    config = write_demo_config(d)
+    return {"dir": d, "summary": summary, "config": config}
+
+
+@pytest.fixture(scope="session")
+def demo_frames():
+    from monitor.demo import demo_tables
+
+    frames, summary = demo_tables()
+    return frames, summary
+
+
+def _pg_admin_engine():
+    import sqlalchemy as sa
+
+    return sa.create_engine(PG_DSN, isolation_level="AUTOCOMMIT", poolclass=sa.pool.NullPool)
+
+
+@pytest.fixture(scope="session")
+def pg_url() -> Iterator[str]:
+    """A fresh PostgreSQL database for this test session; dropped afterwards."""
+    import sqlalchemy as sa
+
+    try:
+        import psycopg  # noqa: F401
+
+        admin = _pg_admin_engine()
+        with admin.connect() as c:
+            c.execute(sa.text("SELECT 1"))
+    except Exception as exc:  # no driver or no server
+        if os.environ.get("EXPWATCH_REQUIRE_POSTGRES") == "1":
+            pytest.fail(f"PostgreSQL is required (EXPWATCH_REQUIRE_POSTGRES=1) but unavailable: {exc}")
+        pytest.skip(f"PostgreSQL not available on 127.0.0.1:5432: {exc}")
+    name = f"expwatch_test_{uuid.uuid4().hex[:10]}"
+    with admin.connect() as c:
+        c.execute(sa.text(f'CREATE DATABASE "{name}"'))
+    url = sa.make_url(PG_DSN).set(database=name).render_as_string(hide_password=False)
+    try:
+        yield url
+    finally:
+        with admin.connect() as c:
+            c.execute(sa.text(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)'))
+        admin.dispose()
+
+
+def load_frames_into_postgres(url: str, frames: dict[str, pd.DataFrame], schema: str) -> None:
+    """Copy DataFrames into PostgreSQL tables (COPY, so millions of rows take seconds)."""
+    import sqlalchemy as sa
+
+    eng = sa.create_engine(url, poolclass=sa.pool.NullPool)
+    types = {"object": "TEXT", "str": "TEXT", "string": "TEXT", "float64": "DOUBLE PRECISION", "int64": "BIGINT",
+             "int32": "INTEGER", "bool": "BOOLEAN", "boolean": "BOOLEAN"}
+    with eng.begin() as conn:
+        conn.execute(sa.text(f'CREATE SCHEMA IF NOT EXISTS "{schema}"'))
+        raw = conn.connection.driver_connection
+        for table, df in frames.items():
+            cols = []
+            for col, dt in df.dtypes.items():
+                kind = "TIMESTAMP" if str(dt).startswith("datetime64") else types.get(str(dt), "TEXT")
+                cols.append(f'"{col}" {kind}')
+            conn.execute(sa.text(f'DROP TABLE IF EXISTS "{schema}"."{table}"'))
+            conn.execute(sa.text(f'CREATE TABLE "{schema}"."{table}" ({", ".join(cols)})'))
+            buf = io.StringIO()
+            df.to_csv(buf, index=False, header=False, na_rep="\\N", date_format="%Y-%m-%d %H:%M:%S.%f")
+            with raw.cursor() as cur:
+                with cur.copy(f'COPY "{schema}"."{table}" FROM STDIN WITH (FORMAT csv, NULL \'\\N\')') as cp:
+                    cp.write(buf.getvalue())
+    eng.dispose()
+
+
+def write_config(path: Path, text: str) -> Path:
+    path.write_text(text, encoding="utf-8")
+    return path

@@ -1,0 +1,145 @@
+"""Allocation checks on hourly count frames whose answer is known by construction."""
+
+from __future__ import annotations
+
+from datetime import datetime, timedelta, timezone
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from monitor.checks import allocation_findings
+from monitor.config import CheckConfig, RegistryConfig
+from monitor.registry import Experiment, Phase, experiments_from_frame
+from monitor.stats.allocation import chisquare_gof
+
+UTC = timezone.utc
+T0 = datetime(2026, 10, 1, tzinfo=UTC)
+H = timedelta(hours=1)
+
+
+def _frame(exp, hourly_counts, variants, t0=T0, leaked=None):
+    rows = []
+    for t, row in enumerate(hourly_counts):
+        for k, v in enumerate(variants):
+            if row[k]:
+                rows.append({"experiment": exp, "variant": v, "hour": pd.Timestamp(t0 + t * H), "segment": "{}",
+                             "units": int(row[k]), "leaked": 0 if leaked is None else int(leaked[t][k])})
+    return pd.DataFrame(rows)
+
+
+def _find(found, exp, check):
+    return next(f for f in found if f.experiment == exp and f.check == check)
+
+
+def _diurnal(hours, base, rng):
+    h = np.arange(hours) % 24
+    rate = base * (0.3 + 1.4 * (np.sin((h - 6) / 24 * 2 * np.pi) + 1) / 2)
+    return rng.poisson(rate)
+
+
+def test_ramp_is_healthy_only_when_phases_are_respected():
+    """5% -> 20% -> 50% ramp assigned exactly as designed: the phase-aware check is quiet,
+    while pooling all units against the final 50/50 (a phase-blind check) would alarm."""
+    rng = np.random.default_rng(3)
+    phases = (Phase(1, T0, T0 + 72 * H, {"control": 0.95, "treatment": 0.05}),
+              Phase(2, T0 + 72 * H, T0 + 144 * H, {"control": 0.8, "treatment": 0.2}),
+              Phase(3, T0 + 144 * H, None, {"control": 0.5, "treatment": 0.5}))
+    e = Experiment("ramp", "control", ("control", "treatment"), phases)
+    rows = []
+    for t in range(216):
+        p = phases[min(t // 72, 2)]
+        n = rng.poisson(200)
+        rows.append(rng.multinomial(n, [p.weights["control"], p.weights["treatment"]]))
+    found = allocation_findings([e], {"assigned": _frame("ramp", rows, e.variants)}, "assigned", T0 + 216 * H, CheckConfig())
+    srm = _find(found, "ramp", "srm")
+    assert srm.status == "ok"
+    assert [p["phase"] for p in srm.statistics["phases"]] == [1, 2, 3]
+    pooled = np.array(rows).sum(axis=0)
+    assert chisquare_gof(pooled, [0.5, 0.5]).pvalue[0] < 1e-100  # what a phase-blind check would see
+
+
+def test_hour_straddling_a_ramp_is_left_out():
+    e = Experiment("x", "control", ("control", "treatment"),
+                   (Phase(1, T0, T0 + 10.5 * H, {"control": 0.9, "treatment": 0.1}),
+                    Phase(2, T0 + 10.5 * H, None, {"control": 0.5, "treatment": 0.5})))
+    rows = [[90, 10]] * 10 + [[70, 30]] + [[50, 50]] * 10
+    found = allocation_findings([e], {"assigned": _frame("x", rows, e.variants)}, "assigned", T0 + 21 * H, CheckConfig())
+    srm = _find(found, "x", "srm")
+    assert srm.statistics["units_outside_phases"] == 100
+    assert srm.status == "ok"
+
+
+def test_unknown_and_null_variants_are_reported_not_tested():
+    e = Experiment("x", "control", ("control", "treatment"), (Phase(1, T0, None, {"control": 0.5, "treatment": 0.5}),))
+    df = _frame("x", [[500, 500]] * 24, e.variants)
+    extra = pd.DataFrame([{"experiment": "x", "variant": "treatmnet", "hour": pd.Timestamp(T0), "segment": "{}", "units": 40, "leaked": 0},
+                          {"experiment": "x", "variant": None, "hour": pd.Timestamp(T0), "segment": "{}", "units": 60, "leaked": 0}])
+    found = allocation_findings([e], {"assigned": pd.concat([df, extra])}, "assigned", T0 + 24 * H, CheckConfig())
+    u = _find(found, "x", "unknown_variant")
+    assert u.status == "warn"  # 100 of 24,100 units = 0.41% < 1% alert share
+    assert u.statistics["null_variant_units"] == 60 and u.statistics["unknown_variant_units"] == {"treatmnet": 40}
+    assert _find(found, "x", "srm").status == "ok"
+
+
+def test_leakage_thresholds():
+    e = Experiment("x", "control", ("control", "treatment"), (Phase(1, T0, None, {"control": 0.5, "treatment": 0.5}),))
+    rows = [[1000, 1000]] * 5
+    leaked = [[15, 15]] * 5  # 150 of 10,150 = 1.48%
+    found = allocation_findings([e], {"assigned": _frame("x", rows, e.variants, leaked=leaked)}, "assigned", T0 + 5 * H, CheckConfig())
+    lk = _find(found, "x", "leakage")
+    assert lk.status == "alert" and lk.statistics["leaked_units"] == 150
+    assert lk.statistics["share"] == pytest.approx(150 / 10150)
+
+
+def test_freshness_knows_the_usual_traffic():
+    """A 10-hour silence is an alert for a busy experiment, but not for one whose
+    same hours usually bring almost nothing."""
+    rng = np.random.default_rng(11)
+    busy = Experiment("busy", "control", ("control", "treatment"), (Phase(1, T0, None, {"control": 0.5, "treatment": 0.5}),))
+    quiet = Experiment("quiet", "control", ("control", "treatment"), (Phase(1, T0, None, {"control": 0.5, "treatment": 0.5}),))
+    hours = 24 * 10
+    b = _diurnal(hours, 60, rng)
+    q = _diurnal(hours, 0.05, rng)
+    b[-10:] = 0
+    q[-10:] = 0
+    frames = pd.concat([_frame("busy", np.c_[b, b], busy.variants), _frame("quiet", np.c_[q, q], quiet.variants)])
+    found = allocation_findings([busy, quiet], {"assigned": frames}, "assigned", T0 + hours * H, CheckConfig())
+    fb, fq = _find(found, "busy", "freshness"), _find(found, "quiet", "freshness")
+    assert fb.status == "alert" and fb.statistics["gap_hours"] == pytest.approx(10)
+    assert fb.statistics["expected_units_in_gap"] > 100
+    assert fq.status in ("ok", "warn")
+
+
+def test_no_data_at_all_is_a_freshness_alert():
+    e = Experiment("x", "control", ("control", "treatment"), (Phase(1, T0, None, {"control": 0.5, "treatment": 0.5}),))
+    found = allocation_findings([e], {"assigned": _frame("x", [], e.variants)}, "assigned", T0 + 30 * H, CheckConfig())
+    assert _find(found, "x", "freshness").status == "alert"
+    assert _find(found, "x", "srm").status == "ok"
+
+
+def test_small_textbook_srm_is_an_alert_with_the_default_prior():
+    """Kohavi, Tang & Xu, Trustworthy Online Controlled Experiments (2020), ch. 21:
+    821,588 vs 815,482 units on a 50/50 design (values recalled from memory)."""
+    e = Experiment("x", "control", ("control", "treatment"), (Phase(1, T0, None, {"control": 0.5, "treatment": 0.5}),))
+    rows = np.array([[821588, 815482]]) // 1  # all in one hour: the e-value at the final counts
+    found = allocation_findings([e], {"assigned": _frame("x", rows, e.variants)}, "assigned", T0 + H, CheckConfig())
+    srm = _find(found, "x", "srm")
+    assert srm.status == "alert"
+    assert srm.statistics["p_value"] == pytest.approx(1.8e-6, rel=0.05)
+
+
+def test_registry_problems_become_design_findings():
+    df = pd.DataFrame([
+        {"experiment": "ok-exp", "variant": "control", "weight": 0.5, "phase_start": "2026-10-01", "is_control": True},
+        {"experiment": "ok-exp", "variant": "treatment", "weight": 0.5, "phase_start": "2026-10-01", "is_control": False},
+        {"experiment": "bad-sum", "variant": "control", "weight": 0.5, "phase_start": "2026-10-01", "is_control": True},
+        {"experiment": "bad-sum", "variant": "treatment", "weight": 0.4, "phase_start": "2026-10-01", "is_control": False},
+        {"experiment": "two-controls", "variant": "a", "weight": 0.5, "phase_start": "2026-10-01", "is_control": True},
+        {"experiment": "two-controls", "variant": "b", "weight": 0.5, "phase_start": "2026-10-01", "is_control": True},
+    ])
+    exps, problems = experiments_from_frame(df, RegistryConfig(table="x"))
+    assert [e.id for e in exps] == ["ok-exp"]
+    msgs = {p.experiment: p.message for p in problems}
+    assert msgs["bad-sum"] == "phase 1: designed weights sum to 0.9, expected 1"
+    assert msgs["two-controls"].startswith("has 2 control variants")
