@@ -199,3 +199,22 @@ assignments:
     r = run_cycle(load_config(tmp_path / "c.yaml"), as_of=START + timedelta(hours=240))
     srm = next(f for f in r.findings if f.check == "srm" and f.experiment == "steady")
     assert 9000 < sum(srm.statistics["units"].values()) < 11000  # about half the units are on ios
+
+
+def test_empty_warehouse_runs_with_no_experiments(tmp_path):
+    con = duckdb.connect(str(tmp_path / "w.duckdb"))
+    con.execute("CREATE TABLE experiments (experiment_id VARCHAR, phase INTEGER, phase_start TIMESTAMP, phase_end TIMESTAMP,"
+                " variant VARCHAR, weight DOUBLE, is_control BOOLEAN, status VARCHAR, owner VARCHAR, title VARCHAR)")
+    con.execute("CREATE TABLE assignments (unit_id VARCHAR, experiment_id VARCHAR, variant VARCHAR, assigned_at TIMESTAMP,"
+                " platform VARCHAR)")
+    con.close()
+    (tmp_path / "c.yaml").write_text(CONFIG)
+    r = run_cycle(load_config(tmp_path / "c.yaml"), as_of=START)
+    assert r.experiments == [] and r.findings == [] and r.recorded
+
+
+def test_missing_table_is_a_query_error_naming_the_query(tmp_path):
+    duckdb.connect(str(tmp_path / "w.duckdb")).close()
+    (tmp_path / "c.yaml").write_text(CONFIG)
+    with pytest.raises(WarehouseError, match=r"query registry failed on duckdb: .*experiments"):
+        run_cycle(load_config(tmp_path / "c.yaml"), as_of=START)
