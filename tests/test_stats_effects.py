@@ -13,7 +13,7 @@ import math
 
 import numpy as np
 import pytest
-from hypothesis import given, settings
+from hypothesis import example, given, settings
 from hypothesis import strategies as st
 from scipy import integrate, optimize, stats
 
@@ -545,6 +545,7 @@ def test_cuped_degenerate_covariate() -> None:
 
 @settings(max_examples=100, deadline=None)
 @given(st.lists(st.floats(0.0, 1.0), min_size=1, max_size=40), st.floats(0.01, 0.3))
+@example([0.0, 0.0, 0.05], 0.05)  # a p-value exactly on its boundary k alpha / m (found by hypothesis)
 def test_bh_matches_statsmodels(p: list[float], alpha: float) -> None:
     # reference: statsmodels.stats.multitest.multipletests(method="fdr_bh")
     from statsmodels.stats.multitest import multipletests

@@ -1407,7 +1407,14 @@ def bh(p_values: object, *, alpha: float = DEFAULT_ALPHA, axis: int = -1) -> Mul
         q = ps * m / np.arange(1, m + 1)
         q = np.minimum.accumulate(q[..., ::-1], axis=-1)[..., ::-1]
         adj = _unsort(np.minimum(q, 1.0), order)
-    rejected = adj <= a
+    if m == 0:
+        rejected = np.zeros(p.shape, dtype=bool)
+    else:
+        # the step-up rule on the p-values themselves (p_(k) <= k alpha / m), so that a p-value
+        # exactly at its boundary is rejected whatever the rounding of m p / k
+        below = ps <= a * np.arange(1, m + 1) / m
+        k_max = np.where(below.any(axis=-1), m - np.argmax(below[..., ::-1], axis=-1), 0)
+        rejected = _unsort(np.arange(m) < k_max[..., None], order)
     return MultipleTestResult(
         adjusted=np.moveaxis(adj, -1, axis),
         rejected=np.moveaxis(rejected, -1, axis),
