@@ -17,6 +17,7 @@ import time
 from collections.abc import Sequence
 from datetime import datetime, timezone
 from pathlib import Path
+from typing import Any
 
 from rich.console import Console
 
@@ -29,11 +30,11 @@ __all__ = ["main"]
 log = logging.getLogger("monitor")
 
 
-def _parse_time(text: str) -> datetime:
+def _parse_time(text: str, option: str = "--as-of") -> datetime:
     try:
         t = datetime.fromisoformat(text.strip().replace("Z", "+00:00"))
     except ValueError:
-        raise ConfigError(f"--as-of: {text!r} is not an ISO 8601 time (e.g. 2026-11-30T09:00Z)") from None
+        raise ConfigError(f"{option}: {text!r} is not an ISO 8601 time (e.g. 2026-11-30T09:00Z)") from None
     return t.replace(tzinfo=timezone.utc) if t.tzinfo is None else t.astimezone(timezone.utc)
 
 
@@ -62,6 +63,7 @@ def _build_parser() -> argparse.ArgumentParser:
     r.add_argument("--full-refresh", action="store_true", help="re-pull every hour instead of only recent ones")
     r.add_argument("--wait", type=float, default=0.0, metavar="SECONDS",
                    help="wait this long for another running cycle to finish (default: step aside at once)")
+    _observability_options(r)
 
     v = sub.add_parser("validate", help="check the config, connect, and compile every query without running it",
                        description="Validate the configuration, connect to the warehouse and state store, and compile "
@@ -72,13 +74,90 @@ def _build_parser() -> argparse.ArgumentParser:
                        description="Print every query expwatch would send, with its bind parameters, for a DBA to review.")
     common(s)
 
+    x = sub.add_parser("explain", help="say why an experiment's allocation ratio broke",
+                       description="Explain the allocation ratio of one live experiment: the stage where it breaks, "
+                                   "when it started, which segment values hold it, covariate balance and likely causes. "
+                                   "Read-only: nothing is recorded.")
+    x.add_argument("experiment", metavar="EXPERIMENT", help="the experiment id, as in the registry")
+    common(x)
+    x.add_argument("--as-of", metavar="TIME", help="explain as of TIME (ISO 8601; default now)")
+    x.add_argument("--format", choices=["text", "json", "html"], default="text", help="output format (default text)")
+    x.add_argument("--out", metavar="FILE", help="write to FILE instead of standard output")
+
     d = sub.add_parser("demo", help="build a demo warehouse (DuckDB), run one cycle on it, print what it found",
                        description="Build the demo warehouse of a fictional e-book lending app as a DuckDB file, "
                                    "write a config beside it, and run one cycle.")
     common(d, config=False)
     d.add_argument("--dir", default="expwatch-demo", metavar="DIR", help="where to write the demo (default ./expwatch-demo)")
     d.add_argument("--format", choices=["text", "json"], default="text", help="output format")
+    sv = sub.add_parser("serve", help="run cycles (and the digest) on a schedule until stopped",
+                        description="Run monitoring cycles on the config's schedule (schedule.checks, a cron expression in "
+                                    "the config's timezone) and the digest on schedule.digest, until SIGTERM or SIGINT; "
+                                    "the running cycle is allowed to finish and the exit code is 0.")
+    common(sv)
+    _observability_options(sv)
+
+    rp = sub.add_parser("replay", help="replay the monitor over a past period on a throw-away state store",
+                        description="Run one cycle at every step from --from to --to against a temporary state store "
+                                    "(the configured one is neither read nor written, nothing is sent) and report when "
+                                    "each alert would have opened, escalated and closed.")
+    common(rp)
+    rp.add_argument("--from", dest="start", required=True, metavar="TIME", help="first step (ISO 8601)")
+    rp.add_argument("--to", dest="end", required=True, metavar="TIME", help="last step (ISO 8601)")
+    rp.add_argument("--every", default="1h", metavar="STEP", help="step between cycles: 30m, 1h, 6h, 1d (default 1h)")
+    rp.add_argument("--onset", action="append", default=[], metavar="EXPERIMENT[:CHECK]=TIME",
+                    help="a known onset, to report the detection delay (repeatable)")
+    rp.add_argument("--allocation-only", action="store_true",
+                    help="skip the metric (guardrail) queries and checks: only allocation checks, much faster")
+    rp.add_argument("--format", choices=["text", "json"], default="text", help="output format (default text)")
+
+    st = sub.add_parser("status", help="show recent runs and open alerts from the state store",
+                        description="Show the recent runs (outcome, duration) and the open alerts by check and severity, "
+                                    "read from the state store; nothing is queried in the warehouse.")
+    common(st)
+    st.add_argument("--format", choices=["text", "json"], default="text", help="output format (default text)")
+    st.add_argument("--limit", type=int, default=10, metavar="N", help="how many recent runs (default 10)")
+    _notify_parsers(sub, common)
     return p
+
+
+def _notify_parsers(sub: Any, common: Any) -> None:
+    dg = sub.add_parser("digest", help="build the alert digest from the state store; print, save or e-mail it",
+                        description="Build the digest (every live experiment's latest status, new / ongoing / resolved "
+                                    "alerts since the last digest, charts) from the state store. Without --send or --out "
+                                    "the plain-text version is printed.")
+    common(dg)
+    out = dg.add_mutually_exclusive_group()
+    out.add_argument("--send", action="store_true", help="e-mail it to notify.email.recipients and start the next window")
+    out.add_argument("--out", metavar="FILE", help="write the HTML version (charts embedded) to FILE")
+
+    al = sub.add_parser("alerts", help="list the open alerts, with mutes and queued notifications",
+                        description="List the open alerts from the state store, most severe first, marking muted ones, "
+                                    "and the webhook messages still waiting for delivery.")
+    common(al)
+    al.add_argument("--format", choices=["text", "json"], default="text", help="output format (default text)")
+
+    mu = sub.add_parser("mute", help="stop pushing an experiment's alerts to webhooks until a date",
+                        description="Mute an experiment's alerts (all checks, or one with --check) until --until: they are "
+                                    "not pushed to webhooks but still appear, marked, in the digest and in 'alerts'.")
+    mu.add_argument("experiment", metavar="EXPERIMENT", help="the experiment id, as in the registry")
+    common(mu)
+    mu.add_argument("--check", metavar="CHECK", help="mute only this check (srm, leakage, freshness, guardrail, ...)")
+    mu.add_argument("--until", required=True, metavar="DATE",
+                    help="ISO 8601 time, or a date meaning the end of that day (UTC)")
+    mu.add_argument("--reason", required=True, metavar="TEXT", help="why; shown beside the muted alerts")
+
+    um = sub.add_parser("unmute", help="remove a mute", description="Remove the mute of an experiment (or of one check).")
+    um.add_argument("experiment", metavar="EXPERIMENT", help="the experiment id")
+    common(um)
+    um.add_argument("--check", metavar="CHECK", help="remove only the mute of this check")
+
+
+def _observability_options(sp: argparse.ArgumentParser) -> None:
+    sp.add_argument("--log-format", choices=["text", "json"], default="text",
+                    help="log lines as text or as one JSON object per line (with run id, per-query durations and rows)")
+    sp.add_argument("--metrics-file", metavar="PATH",
+                    help="after each cycle, write Prometheus text-format metrics to PATH (atomically)")
 
 
 def _setup_logging(verbose: bool, console: Console) -> None:
@@ -118,6 +197,9 @@ def _run(cfg: Config, args: argparse.Namespace, console: Console, err: Console, 
             status.stop()
         err.print(f"expwatch: {exc}; this run stepped aside", highlight=False)
         return 0
+    except MonitorError:
+        _write_metrics(cfg, args, ok=False)
+        raise
     finally:
         if status is not None:
             status.stop()
@@ -126,6 +208,201 @@ def _run(cfg: Config, args: argparse.Namespace, console: Console, err: Console, 
     else:
         print_text(result, console)
     log.info("cycle done in %.2fs", time.monotonic() - t0)
+    from monitor.observe import log_cycle
+
+    log_cycle(result, time.monotonic() - t0, cfg.state.url)
+    _write_metrics(cfg, args, ok=True)
+    return 0
+
+
+def _write_metrics(cfg: Config, args: argparse.Namespace, *, ok: bool) -> None:
+    path = getattr(args, "metrics_file", None)
+    if path:
+        from monitor.observe import write_metrics_file
+
+        write_metrics_file(path, cfg.state.url or "", last_attempt_ok=ok)
+
+
+def _setup_json_logging(level: int) -> None:
+    from monitor.observe import JsonFormatter
+
+    root = logging.getLogger("monitor")
+    root.handlers.clear()
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setFormatter(JsonFormatter())
+    root.addHandler(handler)
+    root.setLevel(level)
+    root.propagate = False
+
+
+def _serve(cfg: Config, args: argparse.Namespace) -> int:
+    from monitor.serve import serve
+
+    return serve(cfg, metrics_file=args.metrics_file)
+
+
+def _parse_onsets(items: Sequence[str]) -> dict[object, datetime]:
+    out: dict[object, datetime] = {}
+    for item in items:
+        key, sep, when = item.rpartition("=")
+        if not sep or not key:
+            raise ConfigError(f"--onset: {item!r} is not EXPERIMENT[:CHECK]=TIME")
+        exp, _, check = key.partition(":")
+        out[(exp, check) if check else exp] = _parse_time(when, option="--onset")
+    return out
+
+
+def _replay(cfg: Config, args: argparse.Namespace, err: Console) -> int:
+    import json
+
+    from monitor.replay import parse_every, render_replay_text, replay, replay_to_json
+
+    every = parse_every(args.every)
+    start, end = _parse_time(args.start, option="--from"), _parse_time(args.end, option="--to")
+    onsets = _parse_onsets(args.onset)
+    t0 = time.monotonic()
+
+    def on_step(i: int, n: int, as_of: datetime) -> None:
+        log.info("replay step %d/%d: %s (%.0fs)", i + 1, n, as_of.isoformat(), time.monotonic() - t0)
+
+    report = replay(cfg, start, end, every=every, onsets=onsets, allocation_only=args.allocation_only, on_step=on_step)
+    if args.format == "json":
+        sys.stdout.write(json.dumps(replay_to_json(report), indent=2, ensure_ascii=False, allow_nan=False) + "\n")
+    else:
+        sys.stdout.write(render_replay_text(report))
+    return 0
+
+
+def _status(cfg: Config, args: argparse.Namespace) -> int:
+    import json
+
+    from monitor.observe import read_status, render_status_text, status_to_json
+
+    report = read_status(cfg.state.url or "", limit=args.limit)
+    if args.format == "json":
+        sys.stdout.write(json.dumps(status_to_json(report), indent=2, ensure_ascii=False, allow_nan=False) + "\n")
+    else:
+        sys.stdout.write(render_status_text(report))
+    return 0
+
+
+def _notify_cfg(cfg: Config) -> Any:
+    from monitor.notify_config import NotifyConfig
+
+    return getattr(cfg, "notify", None) or NotifyConfig()
+
+
+def _until(text: str) -> datetime:
+    """``--until``: a date is the end of that day (UTC); a time without zone is UTC."""
+    from datetime import date, timedelta
+
+    try:
+        d = date.fromisoformat(text.strip())
+    except ValueError:
+        return _parse_time(text, "--until")
+    return datetime(d.year, d.month, d.day, tzinfo=timezone.utc) + timedelta(days=1)
+
+
+def _notify_command(cfg: Config, args: argparse.Namespace, err: Console) -> int:
+    from monitor.state import StateStore
+
+    state = StateStore(cfg.state.url or "")
+    try:
+        if args.command == "digest":
+            return _digest(cfg, args, state, err)
+        if args.command == "alerts":
+            return _alerts(args, state)
+        if args.command == "mute":
+            return _mute(args, state, err)
+        return _unmute(args, state, err)
+    finally:
+        state.dispose()
+
+
+def _check_arg(check: str | None) -> str | None:
+    from monitor.findings import CHECKS
+
+    if check is not None and check not in CHECKS:
+        raise ConfigError(f"--check: unknown check {check!r} (one of {', '.join(CHECKS)})")
+    return check
+
+
+def _digest(cfg: Config, args: argparse.Namespace, state: Any, err: Console) -> int:
+    from monitor.digest import build_digest
+
+    ncfg = _notify_cfg(cfg)
+    meta = None
+    if cfg.registry.inline is not None:  # titles and owners without asking the warehouse
+        from monitor.registry import experiments_from_inline
+
+        meta = experiments_from_inline(cfg.registry)[0]
+    if args.send and ncfg.email is None:
+        raise ConfigError(f"{cfg.where}: notify.email: --send needs an e-mail configuration (smtp_host, sender, recipients)")
+    prefix = ncfg.email.subject_prefix if ncfg.email is not None else "[expwatch]"
+    if args.send:
+        from monitor.digest import run_digest
+
+        digest = run_digest(cfg)
+        err.print(f"digest: sent to {len(ncfg.email.recipients)} recipient(s): {digest.subject}", highlight=False, soft_wrap=True)
+        return 0
+    digest = build_digest(state.engine, experiments_meta=meta, subject_prefix=prefix, charts=bool(args.out))
+    if args.out:
+        out = Path(args.out)
+        try:
+            out.write_text(digest.standalone_html(), encoding="utf-8")
+        except OSError as exc:
+            raise ConfigError(f"--out {out}: cannot be written ({exc.strerror})") from None
+        err.print(f"digest: wrote {out} ({len(digest.images)} charts)", highlight=False, soft_wrap=True)
+    else:
+        sys.stdout.write(digest.text if digest.text.endswith("\n") else digest.text + "\n")
+    return 0
+
+
+def _alerts(args: argparse.Namespace, state: Any) -> int:
+    import json
+
+    from monitor.digest import open_alerts
+    from monitor.outbox import pending_messages
+
+    items = open_alerts(state.engine)
+    pending = pending_messages(state.engine)
+    if args.format == "json":
+        doc = {"format": "expwatch.alerts/1", "alerts": [
+            {"experiment": a.experiment, "check": a.check, "scope": a.scope, "severity": a.severity, "highest": a.peak,
+             "summary": a.summary, "opened_at": a.opened_at.isoformat().replace("+00:00", "Z"),
+             "muted_until": a.muted.until.isoformat().replace("+00:00", "Z") if a.muted else None,
+             "mute_reason": a.muted.reason if a.muted else None} for a in items],
+            "undelivered_notifications": len(pending)}
+        sys.stdout.write(json.dumps(doc, indent=2, ensure_ascii=False, allow_nan=False) + "\n")
+        return 0
+    lines = [f"{len(items)} open alert{'s' if len(items) != 1 else ''}"]
+    for a in items:
+        mute_note = f" [muted until {a.muted.until:%Y-%m-%d %H:%M} UTC: {a.muted.reason}]" if a.muted else ""
+        lines.append(f"{a.severity.upper():8} {a.experiment} · {a.check} · {a.scope}{mute_note}: {a.summary} "
+                     f"(open since {a.opened_at:%Y-%m-%d %H:%M} UTC)")
+    if pending:
+        lines.append(f"{len(pending)} webhook message(s) not delivered yet; oldest from "
+                     f"{pending[0]['created_at']:%Y-%m-%d %H:%M} UTC, last error: {pending[-1]['last_error'] or 'not tried yet'}")
+    sys.stdout.write("\n".join(lines) + "\n")
+    return 0
+
+
+def _mute(args: argparse.Namespace, state: Any, err: Console) -> int:
+    from monitor.outbox import mute
+
+    m = mute(state.engine, args.experiment, _check_arg(args.check), _until(args.until), args.reason)
+    what = f"{m.experiment} · {m.check}" if m.check else f"{m.experiment} (every check)"
+    err.print(f"mute: {what} muted until {m.until:%Y-%m-%d %H:%M} UTC", highlight=False, soft_wrap=True)
+    return 0
+
+
+def _unmute(args: argparse.Namespace, state: Any, err: Console) -> int:
+    from monitor.outbox import unmute
+
+    n = unmute(state.engine, args.experiment, _check_arg(args.check))
+    if n == 0:
+        raise ConfigError(f"unmute: {args.experiment}{' · ' + args.check if args.check else ''} is not muted")
+    err.print(f"unmute: removed {n} mute{'s' if n != 1 else ''} of {args.experiment}", highlight=False, soft_wrap=True)
     return 0
 
 
@@ -147,6 +424,13 @@ def _validate(cfg: Config, console: Console) -> int:
         for src in cfg.sources:
             cols = wh.probe(f"assignments[{src.name}]", render_source_sql(src, wh), params, expanding=("experiment_ids",))
             console.print(f"source     ok    {src.name}: compiles, returns {', '.join(cols)}")
+        if cfg.metrics:
+            from monitor.guardrails import metric_params, render_metric_sql
+
+            for metric in cfg.metrics:
+                mparams, mexp = metric_params(metric, now, now, ["expwatch-validate"])
+                wh.probe(f"metric[{metric.name}]", render_metric_sql(metric, cfg.sources[0], wh), mparams, expanding=mexp)
+                console.print(f"metric     ok    {metric.name}: compiles")
         state = StateStore(cfg.state.url or "", migrate=False)
         try:
             version = state.schema_version()
@@ -174,9 +458,43 @@ def _sql(cfg: Config) -> int:
             out.append(f"-- assignments, stage {src.name}\n"
                        "-- binds: :window_start, :as_of, :since (UTC timestamps), :experiment_ids (list of live ids)\n"
                        + render_source_sql(src, wh))
+        if cfg.metrics:
+            from monitor.guardrails import metric_params, render_metric_sql
+
+            now = datetime.now(timezone.utc)
+            for metric in cfg.metrics:
+                names = ", ".join(f":{k}" for k in metric_params(metric, now, now, [])[0])
+                out.append(f"-- metric {metric.name}\n-- binds: {names}\n" + render_metric_sql(metric, cfg.sources[0], wh))
         sys.stdout.write("\n".join(out))
     finally:
         wh.dispose()
+    return 0
+
+
+def _explain(cfg: Config, args: argparse.Namespace, err: Console) -> int:
+    from monitor.explain import explain_experiment, render_html, render_text, to_json
+
+    as_of = _parse_time(args.as_of) if args.as_of else None
+    t0 = time.monotonic()
+    diagnosis = explain_experiment(cfg, args.experiment, as_of=as_of)
+    if args.format == "json":
+        import json
+
+        text = json.dumps(to_json(diagnosis), indent=2, ensure_ascii=False, allow_nan=False) + "\n"
+    elif args.format == "html":
+        text = render_html(diagnosis)
+    else:
+        text = render_text(diagnosis)
+    if args.out:
+        out = Path(args.out)
+        try:
+            out.write_text(text, encoding="utf-8")
+        except OSError as exc:
+            raise ConfigError(f"--out {out}: cannot be written ({exc.strerror})") from None
+        err.print(f"explain: wrote {out}", highlight=False)
+    else:
+        sys.stdout.write(text)
+    log.info("explain done in %.2fs", time.monotonic() - t0)
     return 0
 
 
@@ -221,10 +539,14 @@ def main(argv: Sequence[str] | None = None) -> int:
     if args.command is None:
         parser.print_help()
         return 2
-    width = None if sys.stdout.isatty() else max(100, shutil.get_terminal_size((120, 24)).columns)
+    width = None if sys.stdout.isatty() else max(120, shutil.get_terminal_size((120, 24)).columns)
     console = Console(width=width, highlight=False)
     err = Console(stderr=True, highlight=False)
     _setup_logging(args.verbose, err)
+    if getattr(args, "log_format", "text") == "json":
+        _setup_json_logging(logging.DEBUG if args.verbose else logging.INFO)
+    elif args.command in ("serve", "replay"):
+        logging.getLogger("monitor").setLevel(logging.INFO)  # a long-running command says what it does
     try:
         if args.command == "demo":
             return _demo(args, console, err)
@@ -236,6 +558,16 @@ def main(argv: Sequence[str] | None = None) -> int:
             return _validate(cfg, console)
         if args.command == "sql":
             return _sql(cfg)
+        if args.command == "explain":
+            return _explain(cfg, args, err)
+        if args.command == "serve":
+            return _serve(cfg, args)
+        if args.command == "replay":
+            return _replay(cfg, args, err)
+        if args.command == "status":
+            return _status(cfg, args)
+        if args.command in ("digest", "alerts", "mute", "unmute"):
+            return _notify_command(cfg, args, err)
     except MonitorError as exc:
         if args.verbose:
             log.exception("expwatch failed")

@@ -20,9 +20,20 @@ from pathlib import Path
 from typing import Annotated, Any, Literal
 
 import yaml
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    ValidationError,
+    field_validator,
+    model_validator,
+)
 
 from monitor.errors import ConfigError
+from monitor.notify_config import NotifyConfig
+from monitor.serve_config import ScheduleConfig
+from monitor.stats.effects import DEFAULT_ALPHA as _GUARDRAIL_ALPHA
+from monitor.stats.effects import DEFAULT_N_STAR as _GUARDRAIL_N_STAR
 
 __all__ = ["Config", "load_config", "parse_config"]
 
@@ -130,11 +141,85 @@ class CheckConfig(_Model):
     freshness_baseline_days: Annotated[int, Field(ge=1, le=60)] = 7
     srm_critical_deviation: Annotated[float, Field(gt=0, lt=1)] = 0.1
     critical_factor: Annotated[float, Field(gt=1)] = 5.0
+    guardrail_alpha: Annotated[float, Field(gt=0, lt=0.5)] = _GUARDRAIL_ALPHA
+    """Error rate of the guardrail confidence sequences (two-sided)."""
+    guardrail_n_star: Annotated[int, Field(ge=2)] = _GUARDRAIL_N_STAR
+    """Total units (all compared variants) at which the confidence sequences are tightest."""
+    guardrail_multiplicity: Literal["none", "bh", "ebh"] = "none"
+    """FDR control across the guardrails of one experiment: none, bh (p-values) or ebh (e-values)."""
 
     @model_validator(mode="after")
     def _order(self) -> CheckConfig:
         if self.leakage_warn_share > self.leakage_alert_share:
             raise ValueError("leakage_warn_share must not exceed leakage_alert_share")
+        return self
+
+
+class MetricColumns(_Model):
+    unit: str = "unit_id"
+    timestamp: str = "occurred_at"
+    value: str | None = None
+    """Numeric column aggregated per unit; null counts events (aggregate count or any)."""
+
+
+class MetricSourceConfig(_Model):
+    """Where a per-unit quantity comes from: an event table (or SQL) and how it is
+    aggregated per unit over the unit's events since its first assignment."""
+
+    table: str | None = None
+    sql: str | None = None
+    columns: MetricColumns = MetricColumns()
+    filter_column: str | None = None
+    filter_values: list[str | int | float | bool] | None = None
+    aggregate: Literal["sum", "count", "any", "mean"] = "sum"
+
+    @model_validator(mode="after")
+    def _source(self) -> MetricSourceConfig:
+        if (self.table is None) == (self.sql is None):
+            raise ValueError("give exactly one of 'table' or 'sql'")
+        if (self.filter_column is None) != (self.filter_values is None):
+            raise ValueError("give both 'filter_column' and 'filter_values', or neither")
+        if self.filter_values is not None and not self.filter_values:
+            raise ValueError("filter_values: give at least one value")
+        if self.aggregate in ("sum", "mean") and self.columns.value is None:
+            raise ValueError(f"aggregate {self.aggregate!r} needs columns.value (a numeric column)")
+        return self
+
+
+class CupedConfig(_Model):
+    pre_period_days: Annotated[int, Field(ge=1, le=365)]
+
+
+class MetricConfig(MetricSourceConfig):
+    """One metric compared between variants: a guardrail, a primary or a diagnostic metric."""
+
+    name: str
+    kind: Literal["mean", "proportion", "ratio"] = "mean"
+    role: Literal["guardrail", "primary", "diagnostic"] = "guardrail"
+    bad_direction: Literal["increase", "decrease"] | None = None
+    margin: Annotated[float, Field(ge=0, lt=10)] = 0.02
+    denominator: MetricSourceConfig | None = None
+    cuped: CupedConfig | None = None
+
+    @field_validator("name")
+    @classmethod
+    def _name(cls, v: str) -> str:
+        if not _NAME_RE.match(v) or ":" in v:
+            raise ValueError("must be letters, digits, '_', '-' or '.'")
+        return v
+
+    @model_validator(mode="after")
+    def _kind(self) -> MetricConfig:
+        if self.kind == "ratio" and self.denominator is None:
+            raise ValueError("a ratio metric needs a 'denominator'")
+        if self.kind != "ratio" and self.denominator is not None:
+            raise ValueError(f"'denominator' is only for kind ratio (this metric is {self.kind})")
+        if self.kind == "proportion" and self.aggregate != "any":
+            raise ValueError("a proportion metric needs aggregate 'any' (1 if the unit had a matching event)")
+        if self.role == "guardrail" and self.bad_direction is None:
+            raise ValueError("a guardrail needs 'bad_direction' (increase or decrease)")
+        if self.cuped is not None and self.kind == "ratio":
+            raise ValueError("cuped is available for kind mean and proportion, not ratio")
         return self
 
 
@@ -150,6 +235,9 @@ class Config(_Model):
     stages: list[SourceConfig] = []
     checks: CheckConfig = CheckConfig()
     pull: PullConfig = PullConfig()
+    metrics: list[MetricConfig] = []
+    notify: NotifyConfig = NotifyConfig()
+    schedule: ScheduleConfig = ScheduleConfig()
     timezone: str = "UTC"
     output: Literal["text", "json"] = "text"
     path: Path | None = None
@@ -269,6 +357,11 @@ def _check_semantics(cfg: Config, where: str) -> None:
         ZoneInfo(cfg.timezone)
     except Exception as exc:  # ZoneInfoNotFoundError, ValueError
         raise ConfigError(f"{where}: timezone: unknown time zone {cfg.timezone!r}") from exc
+    seen: set[str] = set()
+    for i, m in enumerate(cfg.metrics):
+        if m.name in seen:
+            raise ConfigError(f"{where}: metrics[{i}].name: metric name {m.name!r} is used twice; names must be unique")
+        seen.add(m.name)
     if cfg.checks.srm_prior_concentrations is not None and not cfg.checks.srm_prior_concentrations:
         raise ConfigError(f"{where}: checks.srm_prior_concentrations: give at least one value or leave it out")
 

@@ -15,15 +15,18 @@ from contextlib import nullcontext
 from pathlib import Path
 
 import sqlalchemy as sa
+from sqlalchemy.exc import SQLAlchemyError
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 
-from monitor import ledger
+from monitor import ledger, outbox
 from monitor.checks import allocation_findings, design_findings
 from monitor.config import Config
-from monitor.errors import ConfigError
+from monitor.errors import ConfigError, MonitorError, WarehouseError
+from monitor.explain import attach_diagnoses
 from monitor.findings import Finding
+from monitor.guardrails import MetricSnapshot, guardrail_findings, pull_metrics
 from monitor.ledger import AlertEvent
 from monitor.pull import PulledSource, pull_sources
 from monitor.registry import Experiment, RegistryProblem, experiments_from_frame, experiments_from_inline
@@ -48,6 +51,7 @@ class CycleResult:
     recorded: bool = False
     note: str | None = None
     query_seconds: dict[str, float] = field(default_factory=dict)
+    metric_snapshots: list[MetricSnapshot] = field(default_factory=list)
 
 
 def load_registry(cfg: Config, wh: Warehouse | None) -> tuple[list[Experiment], list[RegistryProblem]]:
@@ -73,13 +77,21 @@ def run_cycle(
     tracer: Tracer | None = None,
     on_step: Callable[[str], None] | None = None,
     clock: Callable[[], datetime] = _now,
+    notify: bool = True,
 ) -> CycleResult:
     """Run one cycle and (unless ``dry_run``) record it.
+
+    With ``notify`` (the default) the run's notifiable alert events are queued in
+    the outbox inside the same transaction that records them, then delivered
+    (webhooks, heartbeat); a failed delivery stays queued for the next run.
+    ``dry_run``, backtests and ``notify=False`` (replay) send nothing.
 
     Raises
     ------
     WarehouseError, StateError, ConfigError
-        Nothing has been written to the state store when one is raised.
+        Nothing of the run has been written to the state store when one is
+        raised; a warehouse failure queues one "monitor failing" notice when
+        webhooks are configured (not one per failed run).
     """
     started = clock()
     as_of = (as_of or started).astimezone(timezone.utc)
@@ -91,6 +103,7 @@ def run_cycle(
     else:
         state = StateStore(cfg.state.url or "", migrate=not dry_run)
     wh = Warehouse(cfg.warehouse.url, tracer=tracer, timeout_seconds=cfg.warehouse.query_timeout_seconds)
+    notifying = notify and not dry_run and _wants_notifications(cfg)
     try:
         lock_cm = state.lock(wait_seconds=wait_seconds) if not dry_run else nullcontext()
         with lock_cm:
@@ -104,8 +117,15 @@ def run_cycle(
                 on_step("checks")
             counts = {s.name: s.counts for s in sources}
             found = design_findings(problems) + allocation_findings(live, counts, cfg.sources[0].name, as_of, cfg.checks)
+            # every SRM alert carries its diagnosis (when, which slice, which stage), from the counts already pulled
+            found = attach_diagnoses(found, counts, live, cfg, as_of=as_of)
+            # guardrails: one read-only query per metric, before anything is written
+            pulls = pull_metrics(cfg, wh, live, as_of, on_query=(lambda n: on_step(f"metric[{n}]")) if on_step else None)
+            metric_result = guardrail_findings(live, pulls, as_of, cfg.checks)
+            found += list(metric_result.findings)
             result = CycleResult(run_id, as_of, live, found, [], sources, problems,
-                                 query_seconds={s.name: s.seconds for s in wh.stats})
+                                 query_seconds={s.name: s.seconds for s in wh.stats},
+                                 metric_snapshots=list(metric_result.snapshots))
             last = state.last_run_as_of() if not dry_run else None
             backtest = any(not s.persist for s in sources) or (last is not None and as_of < last)
             if dry_run:
@@ -121,15 +141,45 @@ def run_cycle(
                     StateStore.replace_counts(conn, s.name, s.since, as_of, s.experiments, s.fresh)
                 events = ledger.plan(state.open_alerts(conn), found, [e.id for e in live] + [p.experiment for p in problems])
                 result.events = ledger.apply(conn, run_id, as_of, found, events)
+                if notifying:
+                    outbox.enqueue(conn, run_id, as_of, result.events, cfg.notify, live)
+                StateStore.record_metric_snapshots(conn, run_id, as_of, result.metric_snapshots)
                 StateStore.record_run(conn, run_id, started, as_of, "ok", {
                     "experiments": len(live), "findings": len(found),
                     "queries": [{"name": q.name, "seconds": round(q.seconds, 4), "rows": q.rows} for q in wh.stats],
                 })
             result.recorded = True
-            return result
+        if notifying:
+            _deliver(cfg, state, healthy=True)
+        return result
+    except WarehouseError as exc:
+        if notifying:
+            _deliver(cfg, state, healthy=False, failure=str(exc))
+        raise
     finally:
         wh.dispose()
         state.dispose()
+
+
+def _wants_notifications(cfg: Config) -> bool:
+    n = cfg.notify
+    return bool(n.webhooks or n.heartbeat_url)
+
+
+def _deliver(cfg: Config, state: StateStore, *, healthy: bool, failure: str | None = None) -> None:
+    """Deliver what the outbox holds; never fails a run that has already been decided."""
+    try:
+        if healthy:
+            outbox.record_success(state.engine, cfg.notify)
+        else:
+            outbox.record_failure(state.engine, failure or "the monitor failed", cfg.notify)
+        report = outbox.deliver_pending(state.engine, cfg.notify)
+        if report.failed:
+            log.warning("notifications: %d delivered, %d failed and stay queued", report.delivered, report.failed)
+        if healthy:
+            outbox.send_heartbeat(cfg.notify)
+    except (MonitorError, SQLAlchemyError) as exc:
+        log.warning("notifications not delivered this run (they stay queued): %s", exc)
 
 
 def _absent(cfg: Config) -> bool:

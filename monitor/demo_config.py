@@ -25,6 +25,43 @@ stages:                         # the same units counted after bot filtering
     table: assignments_filtered
 checks:
   alpha: 0.001
+  guardrail_alpha: 0.05         # guardrails: always-valid 95% confidence sequences
+metrics:
+  - name: render_ms_per_view    # total render time / page views, per unit
+    role: guardrail
+    kind: ratio
+    bad_direction: increase
+    table: page_renders
+    columns: {timestamp: rendered_at, value: render_ms}
+    aggregate: sum
+    denominator:
+      table: page_renders
+      columns: {timestamp: rendered_at}
+      aggregate: count
+  - name: app_errors_per_unit   # errors per unit (most units have none)
+    role: guardrail
+    kind: mean
+    bad_direction: increase
+    table: app_errors
+    columns: {timestamp: occurred_at}
+    aggregate: count
+  - name: loan_cancelled        # share of units that cancelled at least one loan
+    role: guardrail
+    kind: proportion
+    bad_direction: increase
+    table: loans
+    columns: {timestamp: loaned_at}
+    filter_column: cancelled
+    filter_values: [true]
+    aggregate: any
+  - name: reading_minutes       # reading minutes per unit
+    role: primary
+    kind: mean
+    bad_direction: decrease
+    table: reading_sessions
+    columns: {timestamp: started_at, value: minutes}
+    aggregate: sum
+    cuped: {pre_period_days: 14}
 """
 
 

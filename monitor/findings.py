@@ -7,7 +7,9 @@ threshold (``critical``). An alert escalates when its severity rises.
 
 The ``key`` (experiment, check, scope) is stable across runs, so re-running the
 same hour updates the same alert instead of opening a new one. ``scope`` is the
-pipeline stage for allocation checks and ``registry`` for design problems.
+pipeline stage for allocation checks, ``registry`` for design problems and the
+metric name (``metric:variant`` with several treatments) for ``guardrail`` and
+``metric`` findings.
 """
 
 from __future__ import annotations
@@ -20,7 +22,7 @@ __all__ = ["CHECKS", "Finding", "SEVERITY_NAMES", "Status", "clean_json"]
 
 Status = Literal["ok", "warn", "alert"]
 
-CHECKS = ("srm", "leakage", "unknown_variant", "freshness", "design")
+CHECKS = ("srm", "leakage", "unknown_variant", "freshness", "design", "guardrail", "metric")
 SEVERITY_NAMES = {0: "ok", 1: "warn", 2: "alert", 3: "critical"}
 
 

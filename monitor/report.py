@@ -83,13 +83,14 @@ def print_text(result: CycleResult, console: Console) -> None:
     stages = [s.name for s in result.sources]
     table = Table(title=f"expwatch · {len(result.experiments)} live experiments · as of {result.as_of:%Y-%m-%d %H:%M} UTC",
                   title_justify="left", show_edge=False, pad_edge=False)
-    table.add_column("experiment", overflow="fold")
-    table.add_column("phase", justify="right")
-    table.add_column("units", justify="right")
+    table.add_column("experiment", no_wrap=True)
+    table.add_column("phase", justify="right", no_wrap=True)
+    table.add_column("units", justify="right", no_wrap=True)
     for s in stages:
-        table.add_column(f"srm·{s}")
+        table.add_column(f"srm {s}", overflow="fold")
     for c in ("leakage", "unknown_variant", "freshness"):
-        table.add_column(c.replace("unknown_variant", "variants"))
+        table.add_column(c.replace("unknown_variant", "variants"), overflow="fold")
+    table.add_column("guardrails", overflow="fold")
     entries = {e["experiment"]: e for e in _experiment_entries(result)}
     for e in result.experiments:
         checks = by_exp.get(e.id, {})
@@ -102,6 +103,9 @@ def print_text(result: CycleResult, console: Console) -> None:
         for c in ("leakage", "unknown_variant", "freshness"):
             fs = checks.get(c, [])
             other.append(_cell(fs[0].status) if fs else Text("-"))
+        guards = checks.get("guardrail", [])
+        worst = max((f.status for f in guards), key=lambda st: _RANK[st], default=None)
+        other.append(_cell(worst) if worst else Text("-"))
         table.add_row(e.id, str(entry["phase"] or "-"), f"{sum(entry['units'].values()):,}", *srm_cells, *other)
     console.print(table)
     problems = [f for f in result.findings if f.status != "ok"]

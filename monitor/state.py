@@ -151,7 +151,34 @@ def _migration_1(conn: Connection) -> None:
     metadata.create_all(conn, tables=[meta, runs, counts, watermarks, findings, alerts, alert_events, locks])
 
 
-MIGRATIONS: list[Callable[[Connection], None]] = [_migration_1]
+metric_snapshots = sa.Table(
+    "expwatch_metric_snapshots", metadata,
+    sa.Column("id", sa.Integer, primary_key=True, autoincrement=True),
+    sa.Column("run_id", sa.String(36), nullable=False, index=True),
+    sa.Column("as_of", UTCDateTime, nullable=False),
+    sa.Column("experiment", sa.String(512), nullable=False),
+    sa.Column("metric", sa.String(256), nullable=False),
+    sa.Column("variant", sa.String(512), nullable=False),
+    sa.Column("units_since", UTCDateTime, nullable=False),
+    *(sa.Column(c, sa.Float, nullable=False) for c in
+      ("n", "sum_y", "sum_y2", "sum_x", "sum_x2", "sum_xy", "sum_c", "sum_c2", "sum_yc")),
+    sa.Index("ix_expwatch_metric_snapshots_key", "experiment", "metric", "as_of"),
+)
+
+
+def _migration_2(conn: Connection) -> None:
+    """Per-run sufficient statistics of every metric comparison (guardrails)."""
+    metadata.create_all(conn, tables=[metric_snapshots])
+
+
+def _migration_3(conn: Connection) -> None:
+    """The notification outbox, mutes and monitor-health state (monitor/outbox.py)."""
+    from monitor.outbox import migration_outbox
+
+    migration_outbox(conn)
+
+
+MIGRATIONS: list[Callable[[Connection], None]] = [_migration_1, _migration_2, _migration_3]
 SCHEMA_VERSION = len(MIGRATIONS)
 
 
@@ -218,6 +245,9 @@ class StateStore:
                     conn.execute(sa.delete(meta).where(meta.c.key == "schema_version"))
                     conn.execute(sa.insert(meta).values(key="schema_version", value=str(version)))
             except SQLAlchemyError as exc:
+                # another process may have run the same migration at the same moment
+                if self.schema_version() >= version:
+                    continue
                 raise StateError(
                     f"state store {safe_url(self.url)}: migration to schema version {version} failed: {_first(exc)}"
                 ) from exc
@@ -342,6 +372,22 @@ class StateStore:
                 detail=json.dumps(detail, sort_keys=True),
             )
         )
+
+    @staticmethod
+    def record_metric_snapshots(conn: Connection, run_id: str, as_of: datetime, rows: Sequence[Any]) -> None:
+        """Store the metric statistics of a run (objects with the snapshot table's fields)."""
+        stat_cols = ("n", "sum_y", "sum_y2", "sum_x", "sum_x2", "sum_xy", "sum_c", "sum_c2", "sum_yc")
+        records = [{"run_id": run_id, "as_of": as_of, "experiment": r.experiment, "metric": r.metric,
+                    "variant": r.variant, "units_since": r.since, **{c: float(getattr(r, c)) for c in stat_cols}}
+                   for r in rows]
+        for chunk in _chunks(records, 5000):
+            conn.execute(sa.insert(metric_snapshots), chunk)
+
+    def metric_snapshots(self, run_id: str) -> list[dict[str, Any]]:
+        with self.engine.connect() as conn:
+            rows = conn.execute(sa.select(metric_snapshots).where(metric_snapshots.c.run_id == run_id)
+                                .order_by(metric_snapshots.c.id)).mappings().all()
+        return [dict(r) for r in rows]
 
     def last_run_as_of(self) -> datetime | None:
         with self.engine.connect() as conn:

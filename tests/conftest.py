@@ -100,6 +100,9 @@ def load_frames_into_postgres(url: str, frames: dict[str, pd.DataFrame], schema:
             with raw.cursor() as cur:
                 with cur.copy(f'COPY "{schema}"."{table}" FROM STDIN WITH (FORMAT csv, NULL \'\\N\')') as cp:
                     cp.write(buf.getvalue())
+            # planner statistics, as a real warehouse would have them (without them the metric
+            # queries pick nested loops on freshly loaded tables)
+            conn.execute(sa.text(f'ANALYZE "{schema}"."{table}"'))
     eng.dispose()
 
 

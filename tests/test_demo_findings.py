@@ -1,26 +1,41 @@
-"""The demo: every planted allocation-ratio, leakage and freshness problem is
-found, and nothing else raises an alert (the ramp and unequal-weights experiments
-included), on DuckDB and on the same data loaded into PostgreSQL."""
+"""The demo: every planted allocation-ratio, leakage, freshness and guardrail
+problem is found, and nothing else raises an alert (the ramp and unequal-weights
+experiments included, and the real improvement of a primary metric), on DuckDB
+and on the same data loaded into PostgreSQL."""
 
 from __future__ import annotations
 
 import pytest
+import yaml
+from conftest import load_frames_into_postgres
 
 from monitor.config import load_config, parse_config
 from monitor.cycle import run_cycle
-from monitor.demo import DEMO_AS_OF
-
-from conftest import load_frames_into_postgres
+from monitor.demo import DEMO_AS_OF, EXPERIMENTS
+from monitor.demo_config import DEMO_CONFIG
+from monitor.state import SCHEMA_VERSION, StateStore
 
 ALLOCATION_CHECKS = {"srm", "leakage", "freshness", "unknown_variant", "design"}
+#: the demo config's metric built on each event column a planted effect scales
+METRIC_OF = {("page_renders", "render_ms"): "render_ms_per_view", ("reading_sessions", "minutes"): "reading_minutes"}
+
+
+def _guardrail_scope(experiment):
+    spec = next(s for s in EXPERIMENTS if s.experiment_id == experiment)
+    (eff,) = [e for e in spec.effects if e.check == "guardrail"]
+    return METRIC_OF[(eff.table, eff.column)]
 
 
 def _expected(summary):
     exp = set()
     for p in summary.planted:
-        if p.check not in ALLOCATION_CHECKS or p.experiment not in summary.live:
+        if p.experiment not in summary.live:
             continue
-        exp.add((p.experiment, p.check, p.stage or "assigned"))
+        if p.check in ALLOCATION_CHECKS:
+            exp.add((p.experiment, p.check, p.stage or "assigned"))
+        elif p.check == "guardrail":
+            exp.add((p.experiment, "guardrail", _guardrail_scope(p.experiment)))
+        # "effect" entries are real effects that must not alert (checked below)
     return exp
 
 
@@ -29,8 +44,19 @@ def _assert_demo(result, summary):
     expected = _expected(summary)
     # each planted problem is found at its stage (an SRM planted at the first stage shows downstream too)
     assert expected <= alerts, f"missed: {expected - alerts}"
-    extra = {a for a in alerts if (a[0], a[1]) not in {(e[0], e[1]) for e in expected}}
+    extra = {a for a in alerts if a not in expected
+             and (a[1] == "guardrail" or (a[0], a[1]) not in {(e[0], e[1]) for e in expected})}
     assert not extra, f"alerts nobody planted: {extra}"
+    # guardrails and metrics: exactly the planted breach is not ok, every other comparison is
+    guard = {(f.experiment, f.check, f.scope): f.status for f in result.findings if f.check in ("guardrail", "metric")}
+    assert {k for k, st in guard.items() if st != "ok"} == {e for e in expected if e[1] == "guardrail"}
+    assert all(f.status == "ok" for f in result.findings if f.check == "metric")
+    n_metrics = len(yaml.safe_load(DEMO_CONFIG)["metrics"])
+    n_treatments = sum(len(e.variants) - 1 for e in result.experiments)
+    assert len(guard) == n_metrics * n_treatments  # every metric x live experiment x treatment
+    for p in summary.planted:
+        if p.check == "effect" and p.experiment in summary.live:
+            assert not [f for f in result.findings if f.experiment == p.experiment and f.status != "ok"]
     for exp in summary.healthy:
         bad = [(f.check, f.scope, f.status, f.summary) for f in result.findings if f.experiment == exp and f.status != "ok"]
         assert not bad, f"healthy experiment {exp} flagged: {bad}"
@@ -52,6 +78,20 @@ def test_demo_findings_on_duckdb(demo, duckdb_result):
     _assert_demo(duckdb_result, demo["summary"])
 
 
+def test_metric_snapshots_are_recorded_with_the_run(demo, duckdb_result):
+    assert duckdb_result.recorded
+    store = StateStore(load_config(demo["config"]).state.url)
+    try:
+        assert store.schema_version() == SCHEMA_VERSION >= 2
+        snaps = store.metric_snapshots(duckdb_result.run_id)
+    finally:
+        store.dispose()
+    f = next(f for f in duckdb_result.findings if f.experiment == "dark-mode-reader" and f.scope == "render_ms_per_view")
+    got = {s["variant"]: s for s in snaps if s["experiment"] == "dark-mode-reader" and s["metric"] == "render_ms_per_view"}
+    assert {v: int(s["n"]) for v, s in got.items()} == f.statistics["n"]
+    assert got["dark"]["sum_y"] / got["dark"]["sum_x"] == pytest.approx(f.statistics["mean"]["dark"])
+
+
 def test_platform_srm_detected_after_its_onset(demo, duckdb_result):
     planted = next(p for p in demo["summary"].planted if p.experiment == "offline-download-prompt" and p.check == "srm")
     srm = next(f for f in duckdb_result.findings if f.experiment == "offline-download-prompt" and f.check == "srm"
@@ -59,17 +99,35 @@ def test_platform_srm_detected_after_its_onset(demo, duckdb_result):
     assert srm.statistics["first_crossed_at"] > planted.onset
 
 
+def _analyze(url):
+    import sqlalchemy as sa
+
+    eng = sa.create_engine(url, isolation_level="AUTOCOMMIT", poolclass=sa.pool.NullPool)
+    with eng.connect() as c:
+        c.execute(sa.text("ANALYZE"))
+    eng.dispose()
+
+
 @pytest.mark.postgres
 @pytest.mark.slow
 def test_demo_findings_on_postgres(demo, demo_frames, duckdb_result, pg_url, tmp_path):
     frames, summary = demo_frames
-    load_frames_into_postgres(pg_url, {k: frames[k] for k in ("experiments", "assignments", "assignments_filtered")}, "library")
+    tables = ("experiments", "assignments", "assignments_filtered", "reading_sessions", "page_renders", "loans", "app_errors")
+    load_frames_into_postgres(pg_url, {k: frames[k] for k in tables}, "library")
+    _analyze(pg_url)  # a warehouse has planner statistics; freshly copied tables do not
+    metrics = yaml.safe_load(DEMO_CONFIG)["metrics"]
+    for m in metrics:
+        for spec in (m, m.get("denominator")):
+            if spec:
+                spec["table"] = f"library.{spec['table']}"
     cfg = parse_config({
         "warehouse": {"url": pg_url},
         "state": {"url": f"sqlite:///{tmp_path / 'pg-state.sqlite'}"},
         "registry": {"table": "library.experiments"},
         "assignments": {"name": "assigned", "table": "library.assignments", "segments": ["platform", "region", "patron_type"]},
         "stages": [{"name": "filtered", "table": "library.assignments_filtered"}],
+        "checks": yaml.safe_load(DEMO_CONFIG)["checks"],
+        "metrics": metrics,
     }, where="pg-config")
     result = run_cycle(cfg, as_of=DEMO_AS_OF)
     _assert_demo(result, summary)
@@ -77,3 +135,10 @@ def test_demo_findings_on_postgres(demo, demo_frames, duckdb_result, pg_url, tmp
     srm_pg = {f.key: f.statistics["units"] for f in result.findings if f.check == "srm"}
     srm_dd = {f.key: f.statistics["units"] for f in duckdb_result.findings if f.check == "srm"}
     assert srm_pg == srm_dd  # the same counts, not just the same verdicts
+    for check in ("guardrail", "metric"):
+        pg = {f.key: f.statistics for f in result.findings if f.check == check}
+        dd = {f.key: f.statistics for f in duckdb_result.findings if f.check == check}
+        assert pg.keys() == dd.keys() and pg
+        for k in pg:
+            assert pg[k]["n"] == dd[k]["n"]
+            assert pg[k]["effect_relative"] == pytest.approx(dd[k]["effect_relative"], rel=1e-9, abs=1e-12)

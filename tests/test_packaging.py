@@ -26,3 +26,5 @@ def test_wheel_contains_templates(tmp_path):
     names = set(zipfile.ZipFile(wheel).namelist())
     for tpl in (ROOT / "sql").glob("*.sql.j2"):
         assert f"monitor/sql/{tpl.name}" in names
+    for tpl in (ROOT / "monitor" / "notify_templates").glob("*.j2"):
+        assert f"monitor/notify_templates/{tpl.name}" in names

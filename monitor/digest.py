@@ -1,0 +1,428 @@
+"""The daily digest: every live experiment's status, the alerts since the last
+digest, and small charts, as an HTML e-mail with a plain-text alternative.
+
+Everything comes from the state store: the latest recorded run's findings
+(``expwatch_findings``), the alert ledger (``expwatch_alerts``), the hourly
+counts (``expwatch_hourly_counts``) for the allocation charts, earlier runs'
+``guardrail`` findings for the effect charts, and the mutes. The window of "new"
+and "resolved" alerts runs from the previous digest (recorded by
+:func:`mark_digest_sent`) to the latest run; without a previous digest it is the
+24 hours before the latest run.
+
+The e-mail (:func:`send_digest`) is ``multipart/alternative``: a plain-text part
+and a ``multipart/related`` part holding the HTML and its charts as inline PNG
+images referenced by Content-ID [1]_ [2]_.
+
+References
+----------
+.. [1] N. Freed and N. Borenstein, "Multipurpose Internet Mail Extensions (MIME)
+   Part Two: Media Types", RFC 2046, 1996 (multipart/alternative).
+.. [2] E. Levinson, "The MIME Multipart/Related Content-type", RFC 2387, 1998;
+   and "Content-ID and Message-ID Uniform Resource Locators", RFC 2392, 1998.
+"""
+
+from __future__ import annotations
+
+import base64
+import json
+import logging
+import os
+import smtplib
+import ssl
+from dataclasses import dataclass
+from datetime import datetime, timedelta, timezone
+from email.message import EmailMessage
+from email.utils import formatdate, make_msgid
+from importlib import resources
+from typing import Any
+
+import jinja2
+import numpy as np
+import pandas as pd
+import sqlalchemy as sa
+from sqlalchemy.engine import Engine
+
+from monitor.errors import ConfigError, NotifyError
+from monitor.findings import SEVERITY_NAMES
+from monitor.notify_config import EmailConfig
+from monitor.outbox import Mute, _metas, active_mutes, ensure_notify_tables, get_state, set_state
+from monitor.state import alerts, counts, findings, runs
+
+__all__ = ["Digest", "DigestAlert", "ExperimentStatus", "build_digest", "mark_digest_sent", "open_alerts", "run_digest", "send_digest"]
+
+log = logging.getLogger("monitor")
+
+DECISION_SUPPORT = ("This digest is decision support, not a verdict. Before stopping or restarting an experiment "
+                    "because of a serious alert, confirm it in the data: each finding carries its numbers, and "
+                    "'expwatch explain' and 'expwatch sql' show where they come from.")
+_STATUS_RANK = {"ok": 0, "warn": 1, "alert": 2}
+_GUARDRAIL_RUNS = 30
+
+
+@dataclass(frozen=True)
+class DigestAlert:
+    experiment: str
+    check: str
+    scope: str
+    severity: str
+    """Current severity (``ok`` once resolved); ``peak`` is the highest it reached."""
+    peak: str
+    summary: str
+    opened_at: datetime
+    resolved_at: datetime | None
+    muted: Mute | None = None
+
+
+@dataclass(frozen=True)
+class ExperimentStatus:
+    experiment: str
+    title: str | None
+    owner: str | None
+    status: str
+    """Worst status of its findings in the latest run."""
+    checks: dict[str, str]
+    """Check -> worst status across scopes."""
+    findings: tuple[dict[str, Any], ...]
+    """The non-ok findings: check, scope, status, severity, summary, muted."""
+    charts: tuple[str, ...] = ()
+    """Content-IDs of its charts in :attr:`Digest.images`."""
+
+
+@dataclass(frozen=True)
+class Digest:
+    subject: str
+    text: str
+    html: str
+    """HTML referencing the charts as ``cid:`` URLs (for e-mail)."""
+    images: dict[str, bytes]
+    """Content-ID (without angle brackets) -> PNG bytes."""
+    as_of: datetime | None
+    """The latest run the digest describes (None when no run is recorded)."""
+    since: datetime | None
+    experiments: tuple[ExperimentStatus, ...] = ()
+    new: tuple[DigestAlert, ...] = ()
+    ongoing: tuple[DigestAlert, ...] = ()
+    resolved: tuple[DigestAlert, ...] = ()
+    run_id: str | None = None
+
+    def standalone_html(self) -> str:
+        """The HTML with every ``cid:`` image replaced by a data URI, for a file or a browser."""
+        html = self.html
+        for cid, png in self.images.items():
+            html = html.replace(f'src="cid:{cid}"', 'src="data:image/png;base64,' + base64.b64encode(png).decode("ascii") + '"')
+        return html
+
+
+def _template(name: str, autoescape: bool) -> jinja2.Template:
+    env = jinja2.Environment(autoescape=autoescape, undefined=jinja2.StrictUndefined, trim_blocks=True, lstrip_blocks=True)
+    env.filters["t"] = lambda d: "" if d is None else f"{d:%Y-%m-%d %H:%M} UTC"
+    text = (resources.files("monitor") / "notify_templates" / name).read_text(encoding="utf-8")
+    return env.from_string(text)
+
+
+def _latest_run(conn: sa.Connection) -> dict[str, Any] | None:
+    row = conn.execute(sa.select(runs.c.run_id, runs.c.as_of).where(runs.c.outcome == "ok")
+                       .order_by(runs.c.as_of.desc(), runs.c.started_at.desc()).limit(1)).mappings().first()
+    return dict(row) if row else None
+
+
+def _alert(r: Any, muted: list[Mute]) -> DigestAlert:
+    m = next((m for m in muted if m.covers(r["experiment"], r["check_name"])), None)
+    return DigestAlert(r["experiment"], r["check_name"], r["scope"], SEVERITY_NAMES[int(r["severity"])],
+                       SEVERITY_NAMES[int(r["max_severity"])], r["summary"], r["opened_at"], r["resolved_at"], m)
+
+
+def open_alerts(state_engine: Engine, *, at: datetime | None = None) -> list[DigestAlert]:
+    """The open alerts, most severe first, each with its active mute (if any) at ``at``."""
+    ensure_notify_tables(state_engine)
+    at = at or datetime.now(timezone.utc)
+    with state_engine.connect() as conn:
+        muted = active_mutes(conn, at)
+        rows = conn.execute(sa.select(alerts).where(alerts.c.state == "open")
+                            .order_by(alerts.c.severity.desc(), alerts.c.experiment, alerts.c.check_name, alerts.c.scope)).mappings().all()
+    return [_alert(r, muted) for r in rows]
+
+
+def _allocation_image(conn: sa.Connection, exp: str, srm: Any) -> bytes | None:
+    """Cumulative allocation chart from the stored hourly counts of the SRM finding's stage."""
+    from monitor.charts import allocation_chart
+
+    if srm is None:
+        return None
+    stats = json.loads(srm["statistics"])
+    phases = stats.get("phases") or []
+    if not phases:
+        return None
+    stmt = (sa.select(counts.c.variant, counts.c.hour, sa.func.sum(counts.c.units).label("units"))
+            .where(counts.c.source == srm["scope"], counts.c.experiment == exp, counts.c.variant.is_not(None))
+            .group_by(counts.c.variant, counts.c.hour))
+    frame = pd.DataFrame([dict(r) for r in conn.execute(stmt).mappings()], columns=["variant", "hour", "units"])
+    if frame.empty:
+        return None
+    variants = list(phases[-1].get("expected_share", {}).keys())
+    frame = frame[frame["variant"].isin(variants)]
+    if frame.empty:
+        return None
+    frame["hour"] = pd.to_datetime(frame["hour"], utc=True, format="ISO8601")
+    table = frame.pivot_table(index="hour", columns="variant", values="units", aggfunc="sum", fill_value=0)
+    table = table.reindex(columns=variants, fill_value=0).sort_index()
+    hours = table.index
+    units = table.to_numpy(dtype=float, copy=True)
+    designed = np.zeros_like(units)
+    for p in phases:  # a handful of phases; each assigns its hours at once
+        in_phase = hours >= _ts(p["start"])
+        if p.get("end"):
+            in_phase &= hours < _ts(p["end"])
+        designed[np.asarray(in_phase)] = [float(p["expected_share"].get(v, 0.0)) for v in variants]
+    units[designed.sum(axis=1) == 0] = 0.0  # hours outside every phase are not part of the test either
+    return allocation_chart(list(hours.to_pydatetime()), units, designed, variants,
+                            f"{exp}: allocation at stage {srm['scope']}")
+
+
+def _ts(value: Any) -> pd.Timestamp:
+    t = pd.Timestamp(value)
+    return t.tz_convert("UTC") if t.tzinfo is not None else t.tz_localize("UTC")
+
+
+def _guardrail_image(conn: sa.Connection, exp: str) -> bytes | None:
+    from monitor.charts import guardrail_chart
+
+    recent = [r[0] for r in conn.execute(sa.select(runs.c.run_id).where(runs.c.outcome == "ok")
+                                         .order_by(runs.c.as_of.desc()).limit(_GUARDRAIL_RUNS)).all()]
+    if not recent:
+        return None
+    rows = conn.execute(sa.select(findings.c.as_of, findings.c.scope, findings.c.statistics)
+                        .where(findings.c.experiment == exp, findings.c.check_name == "guardrail",
+                               findings.c.run_id.in_(recent)).order_by(findings.c.as_of)).all()
+    if not rows:
+        return None
+    series: dict[str, dict[str, list[Any]]] = {}
+    for as_of, scope, text in rows:
+        st = json.loads(text)
+        s = series.setdefault(scope, {"label": scope, "times": [], "effect": [], "lower": [], "upper": []})
+        s["times"].append(as_of)
+        s["effect"].append(st.get("effect_relative"))
+        s["lower"].append(st.get("cs_relative_lower"))
+        s["upper"].append(st.get("cs_relative_upper"))
+    return guardrail_chart(list(series.values()), f"{exp}: guardrail effects (always-valid bands)")
+
+
+def build_digest(state_engine: Engine, *, since: datetime | None = None, experiments_meta: Any = None,
+                 subject_prefix: str = "[expwatch]", charts: bool = True, now: datetime | None = None) -> Digest:
+    """Build the digest from the state store.
+
+    Parameters
+    ----------
+    state_engine
+        The state store.
+    since
+        Start of the alert window; default the previous digest's run time (see
+        :func:`mark_digest_sent`), or 24 hours before the latest run.
+    experiments_meta
+        Registry experiments (or a mapping id -> owner/title) to show titles and
+        owners; without it only ids are shown.
+    subject_prefix
+        Prepended to the subject line.
+    charts
+        Draw the PNG charts (set False for a quick text-only digest).
+    now
+        Time at which mutes are evaluated (default the latest run's time).
+
+    Returns
+    -------
+    Digest
+
+    Notes
+    -----
+    With no recorded run, the digest says so and lists nothing. New alerts are
+    the open alerts opened after ``since``; resolved ones are those resolved
+    after it (whenever they opened); ongoing ones are open since before it. A
+    muted alert is listed and marked, never hidden. Experiments are ordered worst
+    first, then by id; their chart Content-IDs are ``alloc-<n>@expwatch`` and
+    ``guard-<n>@expwatch``.
+    """
+    ensure_notify_tables(state_engine)
+    metas = _metas(experiments_meta)
+    with state_engine.connect() as conn:
+        last = _latest_run(conn)
+        as_of = last["as_of"] if last else None
+        if since is None:
+            prev = get_state(conn, "digest")
+            since = (datetime.fromisoformat(prev["last_as_of"].replace("Z", "+00:00")) if prev
+                     else (as_of - timedelta(hours=24) if as_of else None))
+        at = now or as_of or datetime.now(timezone.utc)
+        muted = active_mutes(conn, at)
+        new: list[DigestAlert] = []
+        ongoing: list[DigestAlert] = []
+        resolved: list[DigestAlert] = []
+        exps: list[ExperimentStatus] = []
+        images: dict[str, bytes] = {}
+        if last is not None:
+            arows = conn.execute(sa.select(alerts).where(sa.or_(alerts.c.state == "open", alerts.c.resolved_at > since))
+                                 .order_by(alerts.c.severity.desc(), alerts.c.max_severity.desc(), alerts.c.experiment,
+                                           alerts.c.check_name, alerts.c.scope)).mappings().all()
+            for r in arows:
+                a = _alert(r, muted)
+                if r["state"] == "open":
+                    (new if r["opened_at"] > since else ongoing).append(a)
+                elif r["resolved_at"] is not None and r["resolved_at"] > since:
+                    resolved.append(a)
+            frows = conn.execute(sa.select(findings).where(findings.c.run_id == last["run_id"])
+                                 .order_by(findings.c.id)).mappings().all()
+            by_exp: dict[str, list[Any]] = {}
+            for f in frows:
+                by_exp.setdefault(f["experiment"], []).append(f)
+            order = sorted(by_exp, key=lambda e: (-max(_STATUS_RANK[f["status"]] for f in by_exp[e]), e))
+            for n, e in enumerate(order, start=1):
+                fs = by_exp[e]
+                checks: dict[str, str] = {}
+                for f in fs:
+                    if _STATUS_RANK[f["status"]] >= _STATUS_RANK.get(checks.get(f["check_name"], "ok"), 0):
+                        checks[f["check_name"]] = f["status"]
+                bad = tuple({"check": f["check_name"], "scope": f["scope"], "status": f["status"],
+                             "severity": SEVERITY_NAMES[int(f["severity"])], "summary": f["summary"],
+                             "muted": next((m for m in muted if m.covers(e, f["check_name"])), None)}
+                            for f in fs if f["status"] != "ok")
+                cids: list[str] = []
+                if charts:
+                    srm = next((f for f in fs if f["check_name"] == "srm"), None)
+                    png = _allocation_image(conn, e, srm)
+                    if png is not None:
+                        images[f"alloc-{n}@expwatch"] = png
+                        cids.append(f"alloc-{n}@expwatch")
+                    png = _guardrail_image(conn, e)
+                    if png is not None:
+                        images[f"guard-{n}@expwatch"] = png
+                        cids.append(f"guard-{n}@expwatch")
+                meta = metas.get(e)
+                worst = max((f["status"] for f in fs), key=lambda s: _STATUS_RANK[s])
+                exps.append(ExperimentStatus(e, meta.title if meta else None, meta.owner if meta else None, worst,
+                                             checks, bad, tuple(cids)))
+    check_names = sorted({c for x in exps for c in x.checks}, key=lambda c: (_check_order(c), c))
+    n_bad = sum(1 for x in exps if x.status != "ok")
+    if as_of is None:
+        headline = "no monitoring run is recorded yet"
+    else:
+        headline = (f"{len(exps)} live experiment{'s' if len(exps) != 1 else ''}, {n_bad} need{'s' if n_bad == 1 else ''} a look; "
+                    f"alerts: {len(new)} new, {len(ongoing)} ongoing, {len(resolved)} resolved")
+    subject = f"{subject_prefix} digest {as_of:%Y-%m-%d}: {headline}" if as_of else f"{subject_prefix} digest: {headline}"
+    subject = subject.strip()
+    ctx = {"as_of": as_of, "since": since, "experiments": exps, "checks": check_names, "new": new, "ongoing": ongoing,
+           "resolved": resolved, "headline": headline, "decision_support": DECISION_SUPPORT,
+           "run_id": last["run_id"] if last else None}
+    html = _template("digest.html.j2", True).render(**ctx)
+    text = _template("digest.txt.j2", False).render(**ctx)
+    return Digest(subject, text, html, images, as_of, since, tuple(exps), tuple(new), tuple(ongoing), tuple(resolved),
+                  last["run_id"] if last else None)
+
+
+def _check_order(c: str) -> int:
+    order = ("design", "srm", "leakage", "unknown_variant", "freshness", "guardrail", "metric")
+    return order.index(c) if c in order else len(order)
+
+
+def mark_digest_sent(state_engine: Engine, digest: Digest, *, at: datetime | None = None) -> None:
+    """Record that ``digest`` went out, so the next digest's window starts at its run."""
+    if digest.as_of is None:
+        return
+    ensure_notify_tables(state_engine)
+    at = at or datetime.now(timezone.utc)
+    with state_engine.begin() as conn:
+        set_state(conn, "digest", {"last_as_of": digest.as_of.isoformat().replace("+00:00", "Z"),
+                                   "run_id": digest.run_id, "sent_at": at.isoformat().replace("+00:00", "Z")}, at)
+
+
+def to_email(digest: Digest, email_cfg: EmailConfig) -> EmailMessage:
+    """The MIME message: plain text, then HTML with its images as related parts."""
+    msg = EmailMessage()
+    msg["Subject"] = digest.subject
+    msg["From"] = email_cfg.sender
+    msg["To"] = ", ".join(email_cfg.recipients)
+    msg["Date"] = formatdate(localtime=False, usegmt=True)
+    msg["Message-ID"] = make_msgid(domain=email_cfg.sender.split("@", 1)[1] or None)
+    msg.set_content(digest.text, subtype="plain", charset="utf-8")
+    msg.add_alternative(digest.html, subtype="html", charset="utf-8")
+    html_part = msg.get_payload()[1]
+    for cid, png in digest.images.items():
+        html_part.add_related(png, maintype="image", subtype="png", cid=f"<{cid}>",
+                              filename=cid.split("@", 1)[0] + ".png", disposition="inline")
+    return msg
+
+
+def send_digest(digest: Digest, email_cfg: EmailConfig) -> None:
+    """Send the digest by SMTP (STARTTLS, implicit TLS or plain, per ``security``).
+
+    Raises
+    ------
+    ConfigError
+        A credentials environment variable named in the config is not set.
+    NotifyError
+        The server could not be reached, refused the login or the message; one
+        line naming the server, never the password.
+    """
+    user = password = None
+    if email_cfg.username_env:
+        user = os.environ.get(email_cfg.username_env)
+        password = os.environ.get(email_cfg.password_env or "")
+        if not user or password is None:
+            missing = email_cfg.username_env if not user else email_cfg.password_env
+            raise ConfigError(f"email: environment variable {missing} is not set")
+    msg = to_email(digest, email_cfg)
+    where = f"SMTP server {email_cfg.smtp_host}:{email_cfg.smtp_port}"
+    ctx = ssl.create_default_context()
+    try:
+        if email_cfg.security == "ssl":
+            smtp: smtplib.SMTP = smtplib.SMTP_SSL(email_cfg.smtp_host, email_cfg.smtp_port,
+                                                  timeout=email_cfg.timeout_seconds, context=ctx)
+        else:
+            smtp = smtplib.SMTP(email_cfg.smtp_host, email_cfg.smtp_port, timeout=email_cfg.timeout_seconds)
+        with smtp:
+            smtp.ehlo()
+            if email_cfg.security == "starttls":
+                smtp.starttls(context=ctx)
+                smtp.ehlo()
+            if user is not None:
+                smtp.login(user, password or "")
+            refused = smtp.send_message(msg)
+    except smtplib.SMTPAuthenticationError:
+        raise NotifyError(f"{where}: login refused for user from {email_cfg.username_env}") from None
+    except smtplib.SMTPNotSupportedError as exc:
+        raise NotifyError(f"{where}: {exc}") from None
+    except smtplib.SMTPException as exc:
+        raise NotifyError(f"{where}: {type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''}".rstrip(": ")) from None
+    except (OSError, ssl.SSLError) as exc:
+        raise NotifyError(f"{where}: {exc.strerror or type(exc).__name__}") from None
+    if refused:
+        log.warning("%s refused %d recipient(s): %s", where, len(refused), ", ".join(sorted(refused)))
+
+
+def run_digest(cfg: Any) -> Digest:
+    """Build the digest from ``cfg``'s state store, send it by e-mail and start the
+    next digest window: the scheduler's daily job (``expwatch serve``) and
+    ``expwatch digest --send``.
+
+    Raises
+    ------
+    ConfigError
+        When the configuration has no ``notify.email``.
+    NotifyError
+        When the mail could not be delivered (the window is not advanced, so the
+        next digest still covers these alerts).
+    """
+    from monitor.errors import ConfigError
+    from monitor.registry import experiments_from_inline
+    from monitor.state import StateStore
+
+    email = cfg.notify.email
+    if email is None:
+        raise ConfigError(f"{cfg.where}: notify.email: sending the digest needs an e-mail configuration "
+                          "(smtp_host, sender, recipients)")
+    meta = experiments_from_inline(cfg.registry)[0] if cfg.registry.inline is not None else None
+    state = StateStore(cfg.state.url)
+    try:
+        digest = build_digest(state.engine, experiments_meta=meta, subject_prefix=email.subject_prefix)
+        send_digest(digest, email)
+        mark_digest_sent(state.engine, digest)
+    finally:
+        state.dispose()
+    return digest

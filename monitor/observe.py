@@ -1,0 +1,413 @@
+"""Observability: structured log lines, a Prometheus text-format metrics file and
+the run history shown by ``expwatch status``.
+
+Library code here never installs a handler: :class:`JsonFormatter` and
+:class:`RunContextFilter` are attached by the command line (``--log-format json``).
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import os
+import tempfile
+from collections.abc import Sequence
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any
+
+import sqlalchemy as sa
+
+from monitor.errors import ConfigError
+from monitor.findings import SEVERITY_NAMES
+
+__all__ = [
+    "JsonFormatter",
+    "QueryRecord",
+    "RunContextFilter",
+    "RunSummary",
+    "StatusReport",
+    "log_cycle",
+    "metrics_text",
+    "query_records",
+    "read_status",
+    "render_status_text",
+    "status_to_json",
+    "write_metrics_file",
+]
+
+log = logging.getLogger("monitor")
+
+#: LogRecord attributes that are not user ``extra=`` fields.
+_STANDARD = set(vars(logging.LogRecord("x", 0, "x", 0, "", None, None))) | {"message", "asctime"}
+
+
+class JsonFormatter(logging.Formatter):
+    """One JSON object per line: ``time`` (ISO 8601 UTC), ``level``, ``logger``,
+    ``message`` and every ``extra=`` field of the record (``run_id``, ``event``,
+    ``query``, ``seconds``, ``rows``...).
+
+    Notes
+    -----
+    Values that JSON cannot hold are written as their ``str``; non-finite floats
+    become ``null``, so every line parses with a strict JSON reader.
+    """
+
+    def format(self, record: logging.LogRecord) -> str:
+        out: dict[str, Any] = {
+            "time": datetime.fromtimestamp(record.created, timezone.utc).isoformat(timespec="milliseconds"),
+            "level": record.levelname.lower(),
+            "logger": record.name,
+            "message": record.getMessage(),
+        }
+        for k, v in vars(record).items():
+            if k not in _STANDARD and not k.startswith("_"):
+                out[k] = _jsonable(v)
+        if record.exc_info:
+            out["exception"] = self.formatException(record.exc_info)
+        return json.dumps(out, ensure_ascii=False, allow_nan=False, sort_keys=False)
+
+
+def _jsonable(v: Any) -> Any:
+    if isinstance(v, float):
+        return v if v == v and abs(v) != float("inf") else None
+    if isinstance(v, (str, int, bool)) or v is None:
+        return v
+    if isinstance(v, datetime):
+        return v.astimezone(timezone.utc).isoformat()
+    if isinstance(v, dict):
+        return {str(k): _jsonable(x) for k, x in v.items()}
+    if isinstance(v, (list, tuple)):
+        return [_jsonable(x) for x in v]
+    return str(v)
+
+
+class RunContextFilter(logging.Filter):
+    """Adds the fields in :attr:`context` (e.g. ``run_id``) to every record that
+    lacks them; the caller sets and clears the context around a cycle."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.context: dict[str, Any] = {}
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        for k, v in self.context.items():
+            if not hasattr(record, k):
+                setattr(record, k, v)
+        return True
+
+
+@dataclass(frozen=True)
+class QueryRecord:
+    """One warehouse query of a cycle: ``rows`` is None when not known."""
+
+    name: str
+    seconds: float
+    rows: int | None
+
+
+def query_records(result: Any, state_url: str | None = None) -> list[QueryRecord]:
+    """Per-query durations and row counts of a finished cycle.
+
+    Parameters
+    ----------
+    result : CycleResult
+        What :func:`monitor.cycle.run_cycle` returned.
+    state_url : str, optional
+        The state store; the recorded run's detail holds row counts.
+
+    Returns
+    -------
+    list of QueryRecord
+        In query order. Row counts come from ``result.query_stats`` when the
+        cycle exposes the warehouse statistics, else from the recorded run; for
+        a run that was not recorded (dry run, backtest) ``rows`` is None.
+    """
+    stats = getattr(result, "query_stats", None)
+    if stats:
+        return [QueryRecord(s.name, float(s.seconds), int(s.rows)) for s in stats]
+    if state_url and getattr(result, "recorded", False):
+        detail = _run_detail(state_url, result.run_id)
+        if detail and detail.get("queries"):
+            return [QueryRecord(q["name"], float(q["seconds"]), int(q["rows"])) for q in detail["queries"]]
+    return [QueryRecord(n, float(s), None) for n, s in (getattr(result, "query_seconds", {}) or {}).items()]
+
+
+def _run_detail(state_url: str, run_id: str) -> dict[str, Any] | None:
+    from monitor.state import runs
+
+    eng = sa.create_engine(state_url, poolclass=sa.pool.NullPool)
+    try:
+        with eng.connect() as c:
+            text = c.execute(sa.select(runs.c.detail).where(runs.c.run_id == run_id)).scalar()
+    except sa.exc.SQLAlchemyError:
+        return None
+    finally:
+        eng.dispose()
+    try:
+        return json.loads(text) if text else None
+    except ValueError:
+        return None
+
+
+def log_cycle(result: Any, seconds: float, state_url: str | None = None, logger: logging.Logger = log) -> None:
+    """Log one line per warehouse query and one summary line for a finished cycle,
+    each carrying ``run_id`` (structured fields for :class:`JsonFormatter`)."""
+    for q in query_records(result, state_url):
+        logger.info("query %s: %.3fs, %s rows", q.name, q.seconds, "?" if q.rows is None else q.rows,
+                    extra={"event": "query", "run_id": result.run_id, "query": q.name,
+                           "seconds": round(q.seconds, 4), "rows": q.rows})
+    kinds: dict[str, int] = {}
+    for e in result.events:
+        kinds[e.kind] = kinds.get(e.kind, 0) + 1
+    logger.info("cycle %s as of %s: %d experiments, %d findings, events %s, %.2fs%s",
+                result.run_id, result.as_of.isoformat(), len(result.experiments), len(result.findings),
+                kinds or "none", seconds, "" if result.recorded else " (not recorded)",
+                extra={"event": "cycle", "run_id": result.run_id, "as_of": result.as_of, "seconds": round(seconds, 4),
+                       "experiments": len(result.experiments), "findings": len(result.findings),
+                       "events": kinds, "recorded": bool(result.recorded)})
+
+
+# -- the state store's view -------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class RunSummary:
+    """One recorded run."""
+
+    run_id: str
+    started_at: datetime
+    finished_at: datetime | None
+    as_of: datetime
+    outcome: str
+    seconds: float | None
+    experiments: int | None
+    findings: int | None
+
+
+@dataclass(frozen=True)
+class StatusReport:
+    """What ``expwatch status`` shows.
+
+    Attributes
+    ----------
+    runs : tuple of RunSummary
+        Most recent first.
+    open_alerts : dict of (check, severity name) to int
+        Open alerts counted by check and severity.
+    last_success : datetime or None
+        ``finished_at`` of the latest run with outcome ``ok``.
+    store_exists : bool
+        False when the state store has never been written (no run yet).
+    """
+
+    runs: tuple[RunSummary, ...]
+    open_alerts: dict[tuple[str, str], int]
+    last_success: datetime | None
+    store_exists: bool
+
+    @property
+    def open_total(self) -> int:
+        return sum(self.open_alerts.values())
+
+
+def _sqlite_missing(url: str) -> bool:
+    if url.startswith("sqlite:///"):
+        path = url.removeprefix("sqlite:///").split("?")[0]
+        return path not in ("", ":memory:") and not Path(path).exists()
+    return False
+
+
+def read_status(state_url: str, limit: int = 10) -> StatusReport:
+    """Recent runs and open alerts from the state store, read-only.
+
+    Parameters
+    ----------
+    state_url : str
+        SQLAlchemy URL of the state store.
+    limit : int
+        How many recent runs (at least 1).
+
+    Returns
+    -------
+    StatusReport
+        Empty (``store_exists=False``) when the store has no schema yet; a
+        SQLite file that does not exist is not created.
+
+    Raises
+    ------
+    ConfigError
+        ``limit`` below 1.
+    StateError
+        The store cannot be read.
+    """
+    from monitor.state import StateStore, alerts, runs
+
+    if limit < 1:
+        raise ConfigError(f"--limit: must be at least 1, got {limit}")
+    if _sqlite_missing(state_url):
+        return StatusReport((), {}, None, False)
+    store = StateStore(state_url, migrate=False)
+    try:
+        if store.schema_version() == 0:
+            return StatusReport((), {}, None, False)
+        rows = store.recent_runs(limit)
+        with store.engine.connect() as c:
+            last_ok = c.execute(sa.select(sa.func.max(runs.c.finished_at)).where(runs.c.outcome == "ok")).scalar()
+            grouped = c.execute(sa.select(alerts.c.check_name, alerts.c.severity, sa.func.count())
+                                .where(alerts.c.state == "open").group_by(alerts.c.check_name, alerts.c.severity)).all()
+    finally:
+        store.dispose()
+    if isinstance(last_ok, str):
+        last_ok = datetime.fromisoformat(last_ok)
+    if last_ok is not None and last_ok.tzinfo is None:
+        last_ok = last_ok.replace(tzinfo=timezone.utc)
+    summaries = []
+    for r in rows:
+        try:
+            detail = json.loads(r["detail"]) if r["detail"] else {}
+        except ValueError:
+            detail = {}
+        secs = (r["finished_at"] - r["started_at"]).total_seconds() if r["finished_at"] else None
+        summaries.append(RunSummary(r["run_id"], r["started_at"], r["finished_at"], r["as_of"], r["outcome"],
+                                    None if secs is None else max(0.0, secs),
+                                    detail.get("experiments"), detail.get("findings")))
+    open_by: dict[tuple[str, str], int] = {}
+    for check, sev, n in grouped:
+        key = (str(check), SEVERITY_NAMES.get(int(sev), str(sev)))
+        open_by[key] = open_by.get(key, 0) + int(n)
+    return StatusReport(tuple(summaries), dict(sorted(open_by.items())), last_ok, True)
+
+
+def render_status_text(report: StatusReport) -> str:
+    """The plain-text status table."""
+    if not report.store_exists:
+        return "no run recorded yet (the state store is empty)\n"
+    lines = [f"last successful run finished {_fmt(report.last_success)}; open alerts: {report.open_total}"]
+    for (check, sev), n in report.open_alerts.items():
+        lines.append(f"  {check:<16} {sev:<9} {n}")
+    lines.append("")
+    lines.append(f"{'started (UTC)':<17}  {'as of (UTC)':<17}  {'outcome':<8}  {'seconds':>8}  {'exps':>5}  {'findings':>8}  run id")
+    for r in report.runs:
+        secs = "" if r.seconds is None else f"{r.seconds:.2f}"
+        lines.append(f"{_fmt(r.started_at):<17}  {_fmt(r.as_of):<17}  {r.outcome:<8}  {secs:>8}  "
+                     f"{'' if r.experiments is None else r.experiments:>5}  {'' if r.findings is None else r.findings:>8}  {r.run_id}")
+    return "\n".join(lines) + "\n"
+
+
+def status_to_json(report: StatusReport) -> dict[str, Any]:
+    """The status as a JSON-ready document (``"format": "expwatch.status/1"``)."""
+    return {
+        "format": "expwatch.status/1",
+        "store_exists": report.store_exists,
+        "last_success": _iso(report.last_success),
+        "open_alerts": report.open_total,
+        "open_alerts_by": [{"check": c, "severity": s, "count": n} for (c, s), n in report.open_alerts.items()],
+        "runs": [{"run_id": r.run_id, "started_at": _iso(r.started_at), "finished_at": _iso(r.finished_at),
+                  "as_of": _iso(r.as_of), "outcome": r.outcome, "seconds": None if r.seconds is None else round(r.seconds, 4),
+                  "experiments": r.experiments, "findings": r.findings} for r in report.runs],
+    }
+
+
+def _fmt(t: datetime | None) -> str:
+    return "never" if t is None else f"{t.astimezone(timezone.utc):%Y-%m-%d %H:%M}"
+
+
+def _iso(t: datetime | None) -> str | None:
+    return None if t is None else t.astimezone(timezone.utc).isoformat()
+
+
+# -- Prometheus text format -------------------------------------------------------------
+
+
+def _label(v: str) -> str:
+    return v.replace("\\", "\\\\").replace("\n", "\\n").replace('"', '\\"')
+
+
+def metrics_text(report: StatusReport, *, last_attempt_ok: bool | None = None, checks: Sequence[str] = ()) -> str:
+    """Prometheus text exposition format (version 0.0.4) of a status report.
+
+    Parameters
+    ----------
+    report : StatusReport
+        From :func:`read_status`.
+    last_attempt_ok : bool, optional
+        Whether the cycle that just ran succeeded (a failed cycle writes no run row).
+    checks : sequence of str
+        Check names to write with a zero count when nothing is open, so a
+        resolved alert shows as 0 rather than as a vanished series.
+
+    Returns
+    -------
+    str
+        ``expwatch_last_success_timestamp_seconds``,
+        ``expwatch_last_run_duration_seconds``, ``expwatch_last_run_as_of_timestamp_seconds``,
+        ``expwatch_open_alerts{check,severity}`` and, when given,
+        ``expwatch_last_attempt_success``.
+
+    Notes
+    -----
+    With no successful run yet the timestamp gauge is 0 (an alerting rule on
+    ``time() - expwatch_last_success_timestamp_seconds`` then fires, as it should).
+    """
+    out: list[str] = []
+
+    def gauge(name: str, help_: str, samples: list[tuple[dict[str, str], float]]) -> None:
+        out.append(f"# HELP {name} {help_}")
+        out.append(f"# TYPE {name} gauge")
+        for labels, value in samples:
+            lab = ",".join(f'{k}="{_label(v)}"' for k, v in labels.items())
+            out.append(f"{name}{{{lab}}} {_num(value)}" if lab else f"{name} {_num(value)}")
+
+    last = report.last_success.timestamp() if report.last_success else 0.0
+    gauge("expwatch_last_success_timestamp_seconds", "Unix time the latest successful cycle finished.", [({}, last)])
+    latest = report.runs[0] if report.runs else None
+    gauge("expwatch_last_run_duration_seconds", "Wall time of the latest recorded cycle.",
+          [({}, latest.seconds if latest and latest.seconds is not None else 0.0)])
+    gauge("expwatch_last_run_as_of_timestamp_seconds", "Unix time of the data time (as of) of the latest recorded cycle.",
+          [({}, latest.as_of.timestamp() if latest else 0.0)])
+    counts = dict(report.open_alerts)
+    for c in checks:
+        for s in ("warn", "alert", "critical"):
+            counts.setdefault((c, s), 0)
+    gauge("expwatch_open_alerts", "Open alerts by check and severity.",
+          [({"check": c, "severity": s}, float(n)) for (c, s), n in sorted(counts.items())])
+    if last_attempt_ok is not None:
+        gauge("expwatch_last_attempt_success", "1 if the latest cycle attempt succeeded, else 0.",
+              [({}, 1.0 if last_attempt_ok else 0.0)])
+    return "\n".join(out) + "\n"
+
+
+def _num(v: float) -> str:
+    return str(int(v)) if float(v).is_integer() and abs(v) < 1e15 else repr(float(v))
+
+
+def write_metrics_file(path: str | os.PathLike[str], state_url: str, *, last_attempt_ok: bool | None = None) -> Path:
+    """Write :func:`metrics_text` of the state store atomically (a temporary file in
+    the same directory, then ``os.replace``), as the node_exporter textfile
+    collector expects.
+
+    Raises
+    ------
+    ConfigError
+        The directory does not exist or cannot be written.
+    """
+    from monitor.findings import CHECKS
+
+    target = Path(path)
+    text = metrics_text(read_status(state_url, limit=1), last_attempt_ok=last_attempt_ok, checks=sorted(CHECKS))
+    directory = target.parent if str(target.parent) else Path(".")
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=directory)
+    except OSError as exc:
+        raise ConfigError(f"--metrics-file {target}: cannot write in {directory} ({exc.strerror})") from None
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            fh.write(text)
+        os.chmod(tmp, 0o644)
+        os.replace(tmp, target)
+    except OSError as exc:
+        Path(tmp).unlink(missing_ok=True)
+        raise ConfigError(f"--metrics-file {target}: cannot be written ({exc.strerror})") from None
+    return target

@@ -1,0 +1,295 @@
+"""Replay: what expwatch would have said, run by run, over a past period.
+
+:func:`replay` runs :func:`monitor.cycle.run_cycle` at every step from ``start``
+to ``end`` against a temporary SQLite state store (nothing is read from or
+written to the configured store, and nothing is sent), stepping forward so each
+cycle reuses the counts the previous one pulled, exactly as a scheduled
+deployment would. From the ledger events it reports, per experiment, check and
+scope, when the alert would have opened, escalated and closed, and the
+detection delay against a known onset.
+"""
+
+from __future__ import annotations
+
+import logging
+import re
+import tempfile
+import time
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass
+from datetime import datetime, timedelta, timezone
+from pathlib import Path
+from typing import Any
+
+from monitor.errors import ConfigError
+from monitor.findings import SEVERITY_NAMES
+
+__all__ = ["AlertTimeline", "MissedOnset", "ReplayReport", "parse_every", "render_replay_text", "replay", "replay_to_json"]
+
+log = logging.getLogger("monitor")
+
+_EVERY_RE = re.compile(r"^\s*(\d+)\s*([mhd])\s*$")
+_UNITS = {"m": "minutes", "h": "hours", "d": "days"}
+MAX_STEPS = 20000
+
+
+def parse_every(text: str) -> timedelta:
+    """``"30m"``, ``"1h"``, ``"6h"``, ``"1d"`` -> a positive timedelta.
+
+    Raises
+    ------
+    ConfigError
+        Anything else, or zero.
+    """
+    m = _EVERY_RE.match(text or "")
+    if not m or int(m.group(1)) == 0:
+        raise ConfigError(f"--every: {text!r} is not a step like 30m, 1h, 6h or 1d")
+    return timedelta(**{_UNITS[m.group(2)]: int(m.group(1))})
+
+
+@dataclass(frozen=True)
+class AlertTimeline:
+    """The life of one alert in the replay.
+
+    Attributes
+    ----------
+    experiment, check, scope : str
+        The alert key.
+    opened_at : datetime
+        The first step (data time) at which the alert was open.
+    severity_opened : str
+        Severity name when it opened (``warn``, ``alert``, ``critical``).
+    escalations : tuple of (datetime, str)
+        Each escalation and the new severity.
+    closed_at : datetime or None
+        The step at which it resolved; None when still open at the end.
+    max_severity : str
+    onset : datetime or None
+        The known onset supplied for this experiment (and check), if any.
+    delay_hours : float or None
+        ``opened_at - onset`` in hours; negative means it opened before the
+        supplied onset.
+    summary : str
+        The finding's summary when it opened.
+    """
+
+    experiment: str
+    check: str
+    scope: str
+    opened_at: datetime
+    severity_opened: str
+    escalations: tuple[tuple[datetime, str], ...]
+    closed_at: datetime | None
+    max_severity: str
+    onset: datetime | None
+    delay_hours: float | None
+    summary: str
+
+
+@dataclass(frozen=True)
+class MissedOnset:
+    """A supplied onset for which no alert opened during the replay."""
+
+    experiment: str
+    check: str | None
+    onset: datetime
+
+
+@dataclass(frozen=True)
+class ReplayReport:
+    """The outcome of :func:`replay`.
+
+    Attributes
+    ----------
+    start, end : datetime
+        First and last step (aware UTC).
+    every : timedelta
+    steps : int
+        Cycles run.
+    seconds : float
+        Wall time of the replay.
+    timelines : tuple of AlertTimeline
+        Ordered by opening time, then key.
+    missed : tuple of MissedOnset
+    skipped : tuple of (datetime, str)
+        Steps whose cycle failed, with the one-line reason (the replay goes on).
+    """
+
+    start: datetime
+    end: datetime
+    every: timedelta
+    steps: int
+    seconds: float
+    timelines: tuple[AlertTimeline, ...]
+    missed: tuple[MissedOnset, ...]
+    skipped: tuple[tuple[datetime, str], ...]
+
+
+def _onset_for(onsets: Mapping[Any, datetime], experiment: str, check: str) -> datetime | None:
+    if (experiment, check) in onsets:
+        return onsets[(experiment, check)]
+    return onsets.get(experiment)
+
+
+def replay(
+    cfg: Any,
+    start: datetime,
+    end: datetime,
+    *,
+    every: timedelta = timedelta(hours=1),
+    onsets: Mapping[Any, datetime] | None = None,
+    allocation_only: bool = False,
+    on_step: Callable[[int, int, datetime], None] | None = None,
+    clock: Callable[[], datetime] = lambda: datetime.now(timezone.utc),
+) -> ReplayReport:
+    """Replay the monitor from ``start`` to ``end`` on a throw-away state store.
+
+    Parameters
+    ----------
+    cfg : Config
+        The configuration; only its ``state.url`` is replaced.
+    start, end : datetime
+        Aware times; steps are ``start, start + every, ...`` up to and including ``end``.
+    every : timedelta
+        Step between cycles (positive).
+    onsets : mapping, optional
+        Known problem onsets, keyed by experiment id or by ``(experiment, check)``;
+        the more specific key wins.
+    allocation_only : bool
+        Drop the configured metrics (guardrails) so only the allocation checks
+        run: no metric queries, much faster.
+    on_step : callable, optional
+        Called as ``on_step(i, n, as_of)`` before each cycle.
+    clock : callable
+        Now (aware UTC); ``end`` may not be after it.
+
+    Returns
+    -------
+    ReplayReport
+
+    Raises
+    ------
+    ConfigError
+        Naive times, ``end`` before ``start`` or in the future, a non-positive
+        step, or more than 20,000 steps.
+
+    Notes
+    -----
+    A step whose cycle fails (warehouse error) is listed in ``skipped`` and the
+    replay continues; the next cycle pulls the hours the failed one missed. The
+    first cycle pulls the whole experiment window, later ones only the hours after
+    the previous pull minus the lookback, as in production. Notifications are
+    never sent: :func:`monitor.cycle.run_cycle` is called with ``notify=False``.
+    """
+    from monitor.cycle import run_cycle
+    from monitor.errors import MonitorError
+
+    if start.tzinfo is None or end.tzinfo is None:
+        raise ConfigError("replay: --from and --to must carry a time zone")
+    start, end = start.astimezone(timezone.utc), end.astimezone(timezone.utc)
+    if end < start:
+        raise ConfigError(f"replay: --to {end:%Y-%m-%dT%H:%MZ} is before --from {start:%Y-%m-%dT%H:%MZ}")
+    if end > clock():
+        raise ConfigError(f"replay: --to {end:%Y-%m-%dT%H:%MZ} is in the future")
+    if every <= timedelta(0):
+        raise ConfigError("replay: --every must be positive")
+    n = int((end - start) // every) + 1
+    if n > MAX_STEPS:
+        raise ConfigError(f"replay: {n} steps is more than {MAX_STEPS}; use a larger --every")
+    onsets = {k: v.astimezone(timezone.utc) for k, v in (onsets or {}).items()}
+    t0 = time.monotonic()
+    open_: dict[str, dict[str, Any]] = {}
+    done: list[dict[str, Any]] = []
+    skipped: list[tuple[datetime, str]] = []
+    with tempfile.TemporaryDirectory(prefix="expwatch-replay-") as tmp:
+        url = f"sqlite:///{Path(tmp) / 'replay-state.sqlite'}"
+        update: dict[str, Any] = {"state": cfg.state.model_copy(update={"url": url})}
+        if allocation_only and hasattr(cfg, "metrics"):
+            update["metrics"] = []
+        rcfg = cfg.model_copy(update=update)
+        for i in range(n):
+            as_of = start + i * every
+            if on_step:
+                on_step(i, n, as_of)
+            try:
+                result = run_cycle(rcfg, as_of=as_of, wait_seconds=0.0, notify=False)
+            except MonitorError as exc:
+                skipped.append((as_of, str(exc)))
+                log.warning("replay step %s failed: %s", as_of.isoformat(), exc)
+                continue
+            for ev in result.events:
+                sev = SEVERITY_NAMES.get(ev.severity, str(ev.severity))
+                if ev.kind == "opened":
+                    open_[ev.key] = {"experiment": ev.experiment, "check": ev.check, "scope": ev.scope, "opened_at": as_of,
+                                     "severity_opened": sev, "escalations": [], "max": ev.severity, "summary": ev.summary}
+                elif ev.key in open_:
+                    a = open_[ev.key]
+                    if ev.kind == "escalated":
+                        a["escalations"].append((as_of, sev))
+                    a["max"] = max(a["max"], ev.severity)
+                    if ev.kind == "resolved":
+                        a["closed_at"] = as_of
+                        done.append(open_.pop(ev.key))
+    timelines = []
+    for a in done + list(open_.values()):
+        onset = _onset_for(onsets, a["experiment"], a["check"])
+        delay = None if onset is None else (a["opened_at"] - onset).total_seconds() / 3600.0
+        timelines.append(AlertTimeline(a["experiment"], a["check"], a["scope"], a["opened_at"], a["severity_opened"],
+                                       tuple(a["escalations"]), a.get("closed_at"),
+                                       SEVERITY_NAMES.get(a["max"], str(a["max"])), onset, delay, a["summary"]))
+    timelines.sort(key=lambda t: (t.opened_at, t.experiment, t.check, t.scope))
+    missed = []
+    for key, onset in sorted(onsets.items(), key=lambda kv: str(kv[0])):
+        exp, check = (key if isinstance(key, tuple) else (key, None))
+        if not any(t.experiment == exp and (check is None or t.check == check) for t in timelines):
+            missed.append(MissedOnset(exp, check, onset))
+    return ReplayReport(start, start + (n - 1) * every, every, n, time.monotonic() - t0, tuple(timelines),
+                        tuple(missed), tuple(skipped))
+
+
+def _fmt(t: datetime | None) -> str:
+    return "-" if t is None else f"{t:%Y-%m-%d %H:%M}"
+
+
+def _every_text(td: timedelta) -> str:
+    s = int(td.total_seconds())
+    for unit, size in (("d", 86400), ("h", 3600), ("m", 60)):
+        if s % size == 0:
+            return f"{s // size}{unit}"
+    return f"{s}s"
+
+
+def render_replay_text(report: ReplayReport) -> str:
+    """The replay as a plain-text table (times UTC)."""
+    lines = [f"replay {_fmt(report.start)} .. {_fmt(report.end)} UTC every {_every_text(report.every)}: "
+             f"{report.steps} cycles in {report.seconds:.0f}s, {len(report.timelines)} alerts"]
+    head = f"{'experiment':<26} {'check':<10} {'scope':<10} {'opened':<16} {'escalated':<26} {'closed':<16} {'max':<8} delay"
+    lines += ["", head]
+    for t in report.timelines:
+        esc = ", ".join(f"{_fmt(at)} {s}" for at, s in t.escalations) or "-"
+        delay = "-" if t.delay_hours is None else f"{t.delay_hours:+.0f}h"
+        lines.append(f"{t.experiment[:26]:<26} {t.check:<10} {t.scope[:10]:<10} {_fmt(t.opened_at):<16} {esc:<26} "
+                     f"{_fmt(t.closed_at) if t.closed_at else 'open':<16} {t.max_severity:<8} {delay}")
+    for m in report.missed:
+        lines.append(f"missed: {m.experiment}{' · ' + m.check if m.check else ''}: onset {_fmt(m.onset)} UTC, no alert opened")
+    for at, why in report.skipped:
+        lines.append(f"skipped step {_fmt(at)} UTC: {why}")
+    return "\n".join(lines) + "\n"
+
+
+def replay_to_json(report: ReplayReport) -> dict[str, Any]:
+    """The replay as a JSON-ready document (``"format": "expwatch.replay/1"``)."""
+    iso = (lambda t: None if t is None else t.isoformat())
+    return {
+        "format": "expwatch.replay/1",
+        "start": iso(report.start), "end": iso(report.end), "every_seconds": int(report.every.total_seconds()),
+        "steps": report.steps, "seconds": round(report.seconds, 3),
+        "alerts": [{"experiment": t.experiment, "check": t.check, "scope": t.scope, "opened_at": iso(t.opened_at),
+                    "severity_opened": t.severity_opened,
+                    "escalations": [{"at": iso(a), "severity": s} for a, s in t.escalations],
+                    "closed_at": iso(t.closed_at), "max_severity": t.max_severity, "onset": iso(t.onset),
+                    "delay_hours": None if t.delay_hours is None else round(t.delay_hours, 3), "summary": t.summary}
+                   for t in report.timelines],
+        "missed": [{"experiment": m.experiment, "check": m.check, "onset": iso(m.onset)} for m in report.missed],
+        "skipped": [{"at": iso(a), "reason": r} for a, r in report.skipped],
+    }
