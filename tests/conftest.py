@@ -109,3 +109,25 @@ def load_frames_into_postgres(url: str, frames: dict[str, pd.DataFrame], schema:
 def write_config(path: Path, text: str) -> Path:
     path.write_text(text, encoding="utf-8")
     return path
+
+
+def registry_frame(experiments, start, owner: str = "shelf-team") -> pd.DataFrame:
+    """Registry rows for 50/50 single-phase experiments starting at ``start`` (aware UTC)."""
+    return pd.DataFrame([
+        {"experiment_id": e, "phase": 1, "phase_start": start.replace(tzinfo=None), "phase_end": None, "variant": v,
+         "weight": 0.5, "is_control": v == "control", "status": "running", "owner": owner, "title": e}
+        for e in experiments for v in ("control", "treatment")
+    ])
+
+
+def write_duckdb_warehouse(path: Path, registry: pd.DataFrame, assignments: pd.DataFrame) -> None:
+    """Write the registry and assignment tables into a DuckDB file and close it."""
+    import duckdb
+
+    con = duckdb.connect(str(path))
+    for name, df in {"experiments": registry, "assignments": assignments}.items():
+        con.register("df", df)
+        con.execute(f"CREATE OR REPLACE TABLE {name} AS SELECT * FROM df")
+        con.unregister("df")
+    con.execute("ALTER TABLE experiments ALTER phase_end TYPE TIMESTAMP")
+    con.close()

@@ -22,7 +22,6 @@ import time
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
 
-import duckdb
 import numpy as np
 import pandas as pd
 import pytest
@@ -31,6 +30,8 @@ import sqlalchemy as sa
 from monitor.config import load_config
 from monitor.cycle import run_cycle
 from monitor.state import alert_events, alerts, findings, runs
+
+from conftest import registry_frame, write_duckdb_warehouse
 
 UTC = timezone.utc
 START = datetime(2026, 10, 1, tzinfo=UTC)
@@ -61,18 +62,8 @@ def make_warehouse(path: Path, seed: int = 7) -> None:
     again = c[rng.random(len(c)) < 0.04].copy()
     again["variant"] = np.where(again["variant"] == "control", "treatment", "control")
     again["assigned_at"] = again["assigned_at"] + pd.Timedelta(hours=1)
-    reg = pd.DataFrame([
-        {"experiment_id": e, "phase": 1, "phase_start": START.replace(tzinfo=None), "phase_end": None, "variant": v,
-         "weight": 0.5, "is_control": v == "control", "status": "running", "owner": "shelf-team", "title": e}
-        for e in ("steady", "tilted", "leaky") for v in ("control", "treatment")
-    ])
-    con = duckdb.connect(str(path))
-    for name, df in {"experiments": reg, "assignments": pd.concat([a, b, c, again], ignore_index=True)}.items():
-        con.register("df", df)
-        con.execute(f"CREATE OR REPLACE TABLE {name} AS SELECT * FROM df")
-        con.unregister("df")
-    con.execute("ALTER TABLE experiments ALTER phase_end TYPE TIMESTAMP")
-    con.close()
+    write_duckdb_warehouse(path, registry_frame(("steady", "tilted", "leaky"), START),
+                           pd.concat([a, b, c, again], ignore_index=True))
 
 
 CONFIG = """

@@ -18,6 +18,8 @@ from monitor.cycle import run_cycle
 from monitor.errors import WarehouseError
 from monitor.state import StateStore, alert_events, counts, findings, runs
 
+from conftest import registry_frame, write_duckdb_warehouse
+
 UTC = timezone.utc
 START = datetime(2026, 10, 1, tzinfo=UTC)
 
@@ -41,18 +43,7 @@ def make_warehouse(path, *, skew_from_hour=None, seed=1, hours=240):
         late = (b["assigned_at"] >= pd.Timestamp(START.replace(tzinfo=None) + timedelta(hours=skew_from_hour)))
         drop = late & (b["variant"] == "treatment") & (rng.random(len(b)) < 0.3)
         b = b[~drop]
-    reg = pd.DataFrame([
-        {"experiment_id": e, "phase": 1, "phase_start": START.replace(tzinfo=None), "phase_end": None, "variant": v,
-         "weight": 0.5, "is_control": v == "control", "status": "running", "owner": "shelf-team", "title": e}
-        for e in ("steady", "tilted") for v in ("control", "treatment")
-    ])
-    con = duckdb.connect(str(path))
-    for name, df in {"experiments": reg, "assignments": pd.concat([a, b], ignore_index=True)}.items():
-        con.register("df", df)
-        con.execute(f"CREATE OR REPLACE TABLE {name} AS SELECT * FROM df")
-        con.unregister("df")
-    con.execute("ALTER TABLE experiments ALTER phase_end TYPE TIMESTAMP")
-    con.close()
+    write_duckdb_warehouse(path, registry_frame(("steady", "tilted"), START), pd.concat([a, b], ignore_index=True))
 
 
 CONFIG = """

@@ -16,7 +16,6 @@ import types
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
 
-import duckdb
 import numpy as np
 import pandas as pd
 import pytest
@@ -29,6 +28,8 @@ from monitor.observe import metrics_text, read_status
 from monitor.serve import CycleOutcome, Server, check_job, digest_job, serve
 from monitor.serve_config import ScheduleConfig, parse_cron, schedule_of
 from monitor.state import StateStore, locks
+
+from conftest import registry_frame, write_duckdb_warehouse
 
 UTC = timezone.utc
 START = datetime(2026, 10, 1, tzinfo=UTC)
@@ -48,16 +49,7 @@ def make_warehouse(path: Path, seed: int = 3) -> None:
         if exp == "tilted":
             df = df[~((df["variant"] == "treatment") & (rng.random(n) < 0.3))]
         frames.append(df)
-    reg = pd.DataFrame([{"experiment_id": e, "phase": 1, "phase_start": START.replace(tzinfo=None), "phase_end": None,
-                         "variant": v, "weight": 0.5, "is_control": v == "control", "status": "running",
-                         "owner": "shelf-team", "title": e} for e in ("steady", "tilted") for v in ("control", "treatment")])
-    con = duckdb.connect(str(path))
-    for name, df in {"experiments": reg, "assignments": pd.concat(frames, ignore_index=True)}.items():
-        con.register("df", df)
-        con.execute(f"CREATE OR REPLACE TABLE {name} AS SELECT * FROM df")
-        con.unregister("df")
-    con.execute("ALTER TABLE experiments ALTER phase_end TYPE TIMESTAMP")
-    con.close()
+    write_duckdb_warehouse(path, registry_frame(("steady", "tilted"), START), pd.concat(frames, ignore_index=True))
 
 
 CONFIG = """
