@@ -296,3 +296,37 @@ def test_demo_run_reaches_a_webhook(demo, tmp_path, receiver, session):
     assert len(lines) == 1 + len(opened) and len(opened) >= 5
     assert {ln.split(": ", 1)[0].split(" ", 1)[1] for ln in lines[1:]} == {f"{e.experiment} · {e.check} · {e.scope}" for e in opened}
     store.dispose()
+
+
+@pytest.mark.slow
+def test_cycle_queues_and_delivers_in_the_run(demo, tmp_path, receiver):
+    """run_cycle itself queues the run's alerts in its transaction and delivers them:
+    one chat message for the demo, nothing more when the same hour runs again, and
+    one 'monitor failing' notice when the warehouse is gone (not one per failed run)."""
+    import shutil
+
+    from monitor.config import StateConfig, WarehouseConfig, load_config
+    from monitor.cycle import run_cycle
+    from monitor.demo import DEMO_AS_OF
+    from monitor.errors import WarehouseError
+
+    cfg = load_config(demo["config"])
+    cfg = cfg.model_copy(update={
+        "state": StateConfig(url=f"sqlite:///{tmp_path / 'state.sqlite'}"),
+        "notify": NotifyConfig(webhooks=[WebhookConfig(name="all", url=receiver.url("/all/T"))]),
+    })
+    first = run_cycle(cfg, as_of=DEMO_AS_OF)
+    assert first.recorded and len(receiver.log) == 1
+    opened = [e for e in first.events if e.kind == "opened" and e.severity >= 2]
+    assert len(json.loads(receiver.log[0]["body"])["text"].splitlines()) == 1 + len(opened)
+    run_cycle(cfg, as_of=DEMO_AS_OF)
+    assert len(receiver.log) == 1  # the same hour again: nothing new to say
+    wh_copy = tmp_path / "gone.duckdb"
+    shutil.copy(demo["dir"] / "warehouse.duckdb", wh_copy)
+    broken = cfg.model_copy(update={"warehouse": WarehouseConfig(url=f"duckdb:///{wh_copy}")})
+    wh_copy.unlink()
+    for _ in range(3):
+        with pytest.raises(WarehouseError):
+            run_cycle(broken, as_of=DEMO_AS_OF)
+    assert len(receiver.log) == 2
+    assert "fail" in json.loads(receiver.log[1]["body"])["text"].lower()
