@@ -21,14 +21,13 @@ from typing import Annotated, Any, Literal
 
 import yaml
 from pydantic import (
-    BaseModel,
-    ConfigDict,
     Field,
     ValidationError,
     field_validator,
     model_validator,
 )
 
+from monitor._model import ConfigModel, check_name
 from monitor.errors import ConfigError
 from monitor.notify_config import NotifyConfig
 from monitor.serve_config import ScheduleConfig
@@ -38,11 +37,7 @@ from monitor.stats.effects import DEFAULT_N_STAR as _GUARDRAIL_N_STAR
 __all__ = ["Config", "load_config", "parse_config"]
 
 _ENV_RE = re.compile(r"\$\{([A-Za-z_][A-Za-z0-9_]*)(?::-([^}]*))?\}")
-_NAME_RE = re.compile(r"^[A-Za-z0-9_][A-Za-z0-9_.-]*$")
-
-
-class _Model(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
+_Model = ConfigModel
 
 
 class WarehouseConfig(_Model):
@@ -119,9 +114,7 @@ class SourceConfig(_Model):
     @field_validator("name")
     @classmethod
     def _name(cls, v: str) -> str:
-        if not _NAME_RE.match(v):
-            raise ValueError("must be letters, digits, '_', '-' or '.'")
-        return v
+        return check_name(v)
 
     @model_validator(mode="after")
     def _one_source(self) -> SourceConfig:
@@ -204,9 +197,7 @@ class MetricConfig(MetricSourceConfig):
     @field_validator("name")
     @classmethod
     def _name(cls, v: str) -> str:
-        if not _NAME_RE.match(v) or ":" in v:
-            raise ValueError("must be letters, digits, '_', '-' or '.'")
-        return v
+        return check_name(v)
 
     @model_validator(mode="after")
     def _kind(self) -> MetricConfig:

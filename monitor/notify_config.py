@@ -14,17 +14,17 @@ import fnmatch
 import re
 from typing import Annotated, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
+from pydantic import Field, field_validator, model_validator
+
+from monitor._model import ConfigModel, check_name
 
 __all__ = ["EmailConfig", "NotifyConfig", "RouteConfig", "SEVERITY_LEVELS", "WebhookConfig"]
 
 SEVERITY_LEVELS = {"warn": 1, "alert": 2, "critical": 3}
-_NAME_RE = re.compile(r"^[A-Za-z0-9_][A-Za-z0-9_.-]*$")
 _ENV_NAME_RE = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
 
 
-class _Model(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
+_Model = ConfigModel
 
 
 def _env_name(v: str | None) -> str | None:
@@ -70,9 +70,7 @@ class WebhookConfig(_Model):
     @field_validator("name")
     @classmethod
     def _name(cls, v: str) -> str:
-        if not _NAME_RE.match(v):
-            raise ValueError("must be letters, digits, '_', '-' or '.'")
-        return v
+        return check_name(v)
 
     @field_validator("url")
     @classmethod

@@ -8,7 +8,9 @@ from __future__ import annotations
 
 from typing import Annotated
 
-from pydantic import BaseModel, ConfigDict, Field, field_validator
+from pydantic import Field, field_validator
+
+from monitor._model import ConfigModel
 
 from monitor.errors import ConfigError
 
@@ -51,7 +53,7 @@ def parse_cron(expr: str, *, key: str = "schedule", timezone: str = "UTC"):  # n
         raise ConfigError(f"{key}: {expr!r} is not a valid cron expression ({exc})") from None
 
 
-class ScheduleConfig(BaseModel):
+class ScheduleConfig(ConfigModel):
     """When ``expwatch serve`` runs the checks and the digest.
 
     Attributes
@@ -70,7 +72,6 @@ class ScheduleConfig(BaseModel):
         (for trial runs and tests; the digest keeps its cron).
     """
 
-    model_config = ConfigDict(extra="forbid", frozen=True)
 
     checks: str = "5 * * * *"
     digest: str | None = "0 8 * * *"
