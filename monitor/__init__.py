@@ -1,11 +1,12 @@
 """expwatch: trust checks for live online controlled experiments.
 
-The command line (``expwatch``) is the main interface; this module exposes the
-same cycle for notebooks and orchestrators::
+The command line (``expwatch``) is the main interface; :mod:`monitor.api` gives
+notebooks and orchestrators the same cycle, explain and replay as pandas frames
+plus the command line's JSON documents::
 
-    from monitor import load_config, run_cycle
-    result = run_cycle(load_config("expwatch.yaml"), dry_run=True)
-    [f.to_json() for f in result.findings]
+    from monitor import api
+    run = api.cycle("expwatch.yaml", dry_run=True)
+    run.findings[run.findings.severity >= 2]
 """
 
 from __future__ import annotations

@@ -25,8 +25,10 @@ for each pipeline stage, as pulled by :mod:`monitor.pull`. Checks:
 
 from __future__ import annotations
 
+import itertools
 import math
 from collections.abc import Sequence
+from dataclasses import dataclass
 from datetime import datetime, timedelta
 
 import numpy as np
@@ -38,7 +40,7 @@ from monitor.findings import Finding
 from monitor.registry import Experiment, RegistryProblem
 from monitor.stats.allocation import DEFAULT_CONCENTRATIONS, chisquare_gof, srm_sequential
 
-__all__ = ["allocation_findings", "design_findings", "hourly_by_variant"]
+__all__ = ["HourlyCounts", "allocation_findings", "allocation_findings_from", "design_findings", "hour_index", "hourly_by_variant"]
 
 HOUR = timedelta(hours=1)
 
@@ -69,15 +71,101 @@ def _fmt_e(log_e: float) -> str:
 
 
 def hourly_by_variant(frame: pd.DataFrame) -> pd.DataFrame:
-    """Sum a counts frame over segments: experiment x variant x hour."""
+    """Sum a counts frame over segments: experiment x variant x hour (x leak_hour when present)."""
+    keys = ["experiment", "variant", "hour"] + (["leak_hour"] if "leak_hour" in frame.columns else [])
     if frame.empty:
-        return pd.DataFrame({"experiment": [], "variant": [], "hour": [], "units": [], "leaked": []})
+        return pd.DataFrame({c: [] for c in keys + ["units", "leaked"]})
     g = frame.assign(variant=frame["variant"].astype(object).where(frame["variant"].notna(), None))
     return (
-        g.groupby(["experiment", "variant", "hour"], dropna=False, sort=False)[["units", "leaked"]]
+        g.groupby(keys, dropna=False, sort=False)[["units", "leaked"]]
         .sum()
         .reset_index()
     )
+
+
+#: ``leak_hour`` of units that never leaked, and of leaked units whose leak time is not known
+#: (a normal pull: they count as leaked at any time asked about).
+NEVER = np.iinfo(np.int64).max
+UNKNOWN_LEAK = np.iinfo(np.int64).min
+_EPOCH = pd.Timestamp("1970-01-01", tz="UTC")
+
+
+def hour_index(t: datetime) -> int:
+    """Whole hours since the Unix epoch of an aware time (floored)."""
+    return int((pd.Timestamp(t).tz_convert("UTC") - _EPOCH) // pd.Timedelta(hours=1))
+
+
+def _hour_time(index: int) -> datetime:
+    return (_EPOCH + pd.Timedelta(hours=int(index))).to_pydatetime()
+
+
+@dataclass(frozen=True)
+class HourlyCounts:
+    """One experiment's counts at one stage, summed over segments, as small arrays.
+
+    Row ``r`` holds ``units[r]`` clean and ``leaked[r]`` leaked units first assigned in
+    variant ``names[code[r]]`` (None: NULL variant) in hour ``hour[r]`` (hours since the
+    epoch). ``leak_hour[r]`` is the hour the leaked units were first seen in another
+    variant: :data:`UNKNOWN_LEAK` for a normal pull, a real hour for a replay pull, so
+    :meth:`before` can give the counts as they stood at an earlier time.
+    """
+
+    names: tuple[str | None, ...]
+    code: np.ndarray
+    hour: np.ndarray
+    units: np.ndarray
+    leaked: np.ndarray
+    leak_hour: np.ndarray
+
+    @classmethod
+    def tables(cls, frame: pd.DataFrame) -> dict[str, HourlyCounts]:
+        """Per experiment, from a counts frame (experiment, variant, hour, units, leaked[, leak_hour])."""
+        hourly = hourly_by_variant(frame)
+        out: dict[str, HourlyCounts] = {}
+        if hourly.empty:
+            return out
+        hours = pd.to_datetime(hourly["hour"], utc=True)
+        h_idx = ((hours - _EPOCH) // pd.Timedelta(hours=1)).to_numpy().astype(np.int64)
+        if "leak_hour" in hourly.columns:
+            lh = pd.to_datetime(hourly["leak_hour"], utc=True)
+            l_idx = np.where(lh.isna().to_numpy(), NEVER,
+                             ((lh - _EPOCH) // pd.Timedelta(hours=1)).fillna(0).to_numpy().astype(np.int64))
+        else:
+            l_idx = np.full(len(hourly), UNKNOWN_LEAK, dtype=np.int64)
+        codes, uniques = pd.factorize(hourly["variant"], use_na_sentinel=True)
+        names = tuple(str(u) for u in uniques)
+        has_null = bool((codes < 0).any())
+        codes = np.where(codes < 0, len(names), codes).astype(np.int64)
+        if has_null:
+            names = names + (None,)
+        units = hourly["units"].to_numpy().astype(np.int64)
+        leaked = hourly["leaked"].to_numpy().astype(np.int64)
+        exp = hourly["experiment"].astype(str).to_numpy()
+        order = np.argsort(exp, kind="stable")
+        bounds = np.flatnonzero(np.r_[True, exp[order][1:] != exp[order][:-1], True])
+        for a, b in itertools.pairwise(bounds):
+            rows = order[a:b]
+            out[str(exp[rows[0]])] = cls(names, codes[rows], h_idx[rows], units[rows], leaked[rows], l_idx[rows])
+        return out
+
+    def before(self, hour: int) -> HourlyCounts:
+        """The counts as they stood at the start of ``hour`` (hours since the epoch)."""
+        keep = self.hour < hour
+        leaked = self.leaked[keep]
+        late = self.leak_hour[keep] >= hour
+        return HourlyCounts(self.names, self.code[keep], self.hour[keep], self.units[keep] + np.where(late, leaked, 0),
+                            np.where(late, 0, leaked), self.leak_hour[keep])
+
+    def by_name(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Rows, units and leaked per entry of ``names``."""
+        m = len(self.names)
+        return (np.bincount(self.code, minlength=m),
+                np.bincount(self.code, weights=self.units, minlength=m).astype(np.int64),
+                np.bincount(self.code, weights=self.leaked, minlength=m).astype(np.int64))
+
+    def name_order(self) -> list[int]:
+        """Indices of ``names`` sorted by name, NULL last."""
+        return sorted(range(len(self.names)), key=lambda k: (self.names[k] is None, self.names[k] or ""))
 
 
 def design_findings(problems: Sequence[RegistryProblem]) -> list[Finding]:
@@ -96,19 +184,17 @@ def _phase_grid(exp: Experiment, t0: datetime, n_hours: int) -> tuple[np.ndarray
     wholly inside one phase (before the start, in a gap, or straddling a ramp)."""
     phase = np.zeros(n_hours, dtype=np.int64)
     weights = np.zeros((n_hours, len(exp.variants)))
-    starts = t0 + HOUR * np.arange(n_hours)
     for ph in exp.phases:
         lo = max(0, math.ceil((ph.start - t0) / HOUR))
         hi = n_hours if ph.end is None else min(n_hours, math.floor((ph.end - t0) / HOUR))
         if hi > lo:
             phase[lo:hi] = ph.number
             weights[lo:hi] = exp.weight_vector(ph)
-    del starts
     return phase, weights
 
 
 def _srm_findings(
-    exps: Sequence[Experiment], hourly: pd.DataFrame, source: str, as_of: datetime, cfg: CheckConfig
+    exps: Sequence[Experiment], tables: dict[str, HourlyCounts], source: str, as_of: datetime, cfg: CheckConfig
 ) -> list[Finding]:
     if not exps:
         return []
@@ -121,26 +207,19 @@ def _srm_findings(
     w = np.zeros((E, T, K))
     ph = np.zeros((E, T), dtype=np.int64)
     outside = np.zeros(E, dtype=np.int64)
-    index = {e.id: i for i, e in enumerate(exps)}
     for i, e in enumerate(exps):
         n_h = int((t_end - t0s[i]) / HOUR)
         phase_i, w_i = _phase_grid(e, t0s[i], n_h)
         ph[i, :n_h] = phase_i
         w[i, :n_h, : len(e.variants)] = w_i
-    if not hourly.empty:
-        known = hourly[hourly["experiment"].isin(index)]
-        for exp_id, rows in known.groupby("experiment", sort=False):
-            i = index[str(exp_id)]
-            e = exps[i]
-            slot = {v: k for k, v in enumerate(e.variants)}
-            rows = rows[rows["variant"].isin(slot)]
-            if rows.empty:
-                continue
-            t_idx = ((pd.to_datetime(rows["hour"], utc=True) - pd.Timestamp(t0s[i])) / pd.Timedelta(hours=1)).to_numpy().astype(np.int64)
-            k_idx = rows["variant"].map(slot).to_numpy().astype(np.int64)
-            u = rows["units"].to_numpy().astype(np.int64)
-            ok = (t_idx >= 0) & (t_idx < T)
-            np.add.at(inc[i], (t_idx[ok], k_idx[ok]), u[ok])
+        h = tables.get(e.id)
+        if h is None or not len(h.code):
+            continue
+        slot = np.array([e.variants.index(n) if n in e.variants else -1 for n in h.names], dtype=np.int64)
+        k_idx = slot[h.code]
+        t_idx = h.hour - hour_index(t0s[i])
+        ok = (k_idx >= 0) & (t_idx >= 0) & (t_idx < T)
+        np.add.at(inc[i], (t_idx[ok], k_idx[ok]), h.units[ok])
     # units in hours that belong to no single phase are excluded (reported)
     no_phase = ph == 0
     outside = (inc * no_phase[:, :, None]).sum(axis=(1, 2))
@@ -235,14 +314,18 @@ def _srm_findings(
 # -- leakage, unknown variants, freshness -------------------------------------------------
 
 
-def _leakage(e: Experiment, rows: pd.DataFrame, source: str, cfg: CheckConfig) -> Finding:
-    units = int(rows["units"].sum()) if len(rows) else 0
-    leaked = int(rows["leaked"].sum()) if len(rows) else 0
+def _leakage(e: Experiment, h: HourlyCounts | None, source: str, cfg: CheckConfig) -> Finding:
+    if h is not None and len(h.code):
+        _, units_by, leaked_by = h.by_name()
+        units, leaked = int(units_by.sum()), int(leaked_by.sum())
+        by_var = {("(null)" if h.names[k] is None else str(h.names[k])): int(leaked_by[k])
+                  for k in h.name_order() if leaked_by[k]}
+    else:
+        units, leaked, by_var = 0, 0, {}
     total = units + leaked
     share = leaked / total if total else 0.0
-    by_var = rows.groupby("variant", dropna=False)["leaked"].sum() if len(rows) else pd.Series(dtype="int64")
     stats = {"leaked_units": leaked, "units": total, "share": share,
-             "leaked_by_first_variant": {("(null)" if v is None or v != v else str(v)): int(n) for v, n in by_var.items() if n},
+             "leaked_by_first_variant": by_var,
              "warn_share": cfg.leakage_warn_share, "alert_share": cfg.leakage_alert_share}
     if total and share >= cfg.leakage_alert_share and leaked > 0:
         return Finding(e.id, "leakage", source, "alert",
@@ -254,19 +337,22 @@ def _leakage(e: Experiment, rows: pd.DataFrame, source: str, cfg: CheckConfig) -
     return Finding(e.id, "leakage", source, "ok", f"{leaked:,} units seen in more than one variant", stats)
 
 
-def _unknown(e: Experiment, rows: pd.DataFrame, source: str, cfg: CheckConfig) -> Finding:
-    if len(rows):
-        is_null = rows["variant"].isna()
-        unknown = ~is_null & ~rows["variant"].isin(e.variants)
-        n_null = int(rows.loc[is_null, ["units", "leaked"]].to_numpy().sum())
-        by_name = rows[unknown].groupby("variant")[["units", "leaked"]].sum().sum(axis=1)
-        total = int(rows[["units", "leaked"]].to_numpy().sum())
-    else:
-        n_null, by_name, total = 0, pd.Series(dtype="int64"), 0
-    n_unknown = int(by_name.sum())
+def _unknown(e: Experiment, h: HourlyCounts | None, source: str, cfg: CheckConfig) -> Finding:
+    n_null, total, by_name = 0, 0, {}
+    if h is not None and len(h.code):
+        rows_by, units_by, leaked_by = h.by_name()
+        both = units_by + leaked_by
+        total = int(both.sum())
+        for k in h.name_order():
+            name = h.names[k]
+            if name is None:
+                n_null = int(both[k])
+            elif rows_by[k] and name not in e.variants:
+                by_name[str(name)] = int(both[k])
+    n_unknown = sum(by_name.values())
     bad = n_null + n_unknown
     share = bad / total if total else 0.0
-    stats = {"null_variant_units": n_null, "unknown_variant_units": {str(k): int(v) for k, v in by_name.items()},
+    stats = {"null_variant_units": n_null, "unknown_variant_units": by_name,
              "units": total, "share": share, "known_variants": list(e.variants)}
     if bad == 0:
         return Finding(e.id, "unknown_variant", source, "ok", "every unit has a designed variant", stats)
@@ -274,7 +360,7 @@ def _unknown(e: Experiment, rows: pd.DataFrame, source: str, cfg: CheckConfig) -
     if n_null:
         parts.append(f"{n_null:,} with a NULL variant")
     if n_unknown:
-        names = ", ".join(repr(str(k)) for k in list(by_name.index)[:5])
+        names = ", ".join(repr(k) for k in list(by_name)[:5])
         parts.append(f"{n_unknown:,} in variants not in the registry ({names})")
     summary = f"{' and '.join(parts)}: {100 * share:.2f}% of units; they are left out of the SRM test"
     status = "alert" if share >= cfg.unknown_variant_alert_share else "warn"
@@ -282,35 +368,36 @@ def _unknown(e: Experiment, rows: pd.DataFrame, source: str, cfg: CheckConfig) -
                    critical=share >= cfg.critical_factor * cfg.unknown_variant_alert_share)
 
 
-def _freshness(e: Experiment, rows: pd.DataFrame, source: str, as_of: datetime, cfg: CheckConfig) -> Finding:
+def _freshness(e: Experiment, h: HourlyCounts | None, source: str, as_of: datetime, cfg: CheckConfig) -> Finding:
     start = e.start
     gap_limit = timedelta(hours=cfg.freshness_gap_hours)
-    hours = pd.to_datetime(rows["hour"], utc=True) if len(rows) else pd.Series([], dtype="datetime64[ns, UTC]")
-    totals = (rows["units"] + rows["leaked"]).groupby(hours).sum() if len(rows) else pd.Series(dtype="int64")
-    totals = totals[totals > 0]
+    totals: dict[int, float] = {}
+    if h is not None and len(h.code):
+        hours, inv = np.unique(h.hour, return_inverse=True)
+        sums = np.bincount(inv, weights=(h.units + h.leaked).astype(np.float64))
+        totals = {int(t): float(v) for t, v in zip(hours, sums) if v > 0}
     live_for = as_of - start
     stats: dict[str, object] = {"gap_limit_hours": cfg.freshness_gap_hours}
-    if totals.empty:
+    if not totals:
         stats.update({"last_units_at": None, "gap_hours": live_for / HOUR, "expected_units_in_gap": None})
         if live_for >= gap_limit:
             return Finding(e.id, "freshness", source, "alert",
                            f"no units have arrived since the experiment started {live_for / HOUR:.0f} h ago", stats,
                            critical=live_for >= cfg.critical_factor * gap_limit)
         return Finding(e.id, "freshness", source, "ok", "started less than the gap limit ago; no units yet", stats)
-    last_hour = totals.index.max().to_pydatetime()
+    last_hour = _hour_time(max(totals))
     data_until = min(as_of, last_hour + HOUR)
     gap = as_of - data_until
     gap_h = max(gap / HOUR, 0.0)
     # expected arrivals in the silent hours, from the same hours of the previous days
-    gap_start = _ceil_hour(data_until)
-    silent = [gap_start + HOUR * k for k in range(int(math.ceil(gap_h)))]
-    expected = 0.0
+    gap_start = hour_index(_ceil_hour(data_until))
+    first = hour_index(_floor_hour(start))
     days = cfg.freshness_baseline_days
-    for h in silent:
-        past = [h - timedelta(days=d) for d in range(1, days + 1)]
-        past = [p for p in past if p >= _floor_hour(start) and p < gap_start]
+    expected = 0.0
+    for hh in range(gap_start, gap_start + math.ceil(gap_h)):
+        past = [p for p in (hh - 24 * d for d in range(1, days + 1)) if first <= p < gap_start]
         if past:
-            expected += float(totals.reindex(pd.DatetimeIndex(past)).fillna(0).mean())
+            expected += sum(totals.get(p, 0.0) for p in past) / len(past)
     p_silence = math.exp(-expected)
     stats.update({"last_units_at": last_hour, "gap_hours": gap_h, "expected_units_in_gap": expected,
                   "p_silence": p_silence})
@@ -338,16 +425,26 @@ def allocation_findings(
     ``counts_by_source`` maps each stage name to its counts frame (columns
     experiment, variant, hour, segment, units, leaked; hours aware UTC).
     """
+    tables = {name: HourlyCounts.tables(df) for name, df in counts_by_source.items()}
+    return allocation_findings_from(experiments, tables, first_source, as_of, cfg)
+
+
+def allocation_findings_from(
+    experiments: Sequence[Experiment],
+    tables_by_source: dict[str, dict[str, HourlyCounts]],
+    first_source: str,
+    as_of: datetime,
+    cfg: CheckConfig,
+) -> list[Finding]:
+    """:func:`allocation_findings` from counts already in :class:`HourlyCounts` form
+    (stage -> experiment -> counts); a replay calls it once per step."""
     out: list[Finding] = []
-    hourly = {name: hourly_by_variant(df) for name, df in counts_by_source.items()}
-    for name, frame in hourly.items():
-        out.extend(_srm_findings(experiments, frame, name, as_of, cfg))
-    first = hourly[first_source]
-    by_exp = {str(k): g for k, g in first.groupby("experiment", sort=False)} if len(first) else {}
-    empty = first.iloc[0:0]
+    for name, tables in tables_by_source.items():
+        out.extend(_srm_findings(experiments, tables, name, as_of, cfg))
+    first = tables_by_source[first_source]
     for e in experiments:
-        rows = by_exp.get(e.id, empty)
-        out.append(_leakage(e, rows, first_source, cfg))
-        out.append(_unknown(e, rows, first_source, cfg))
-        out.append(_freshness(e, rows, first_source, as_of, cfg))
+        h = first.get(e.id)
+        out.append(_leakage(e, h, first_source, cfg))
+        out.append(_unknown(e, h, first_source, cfg))
+        out.append(_freshness(e, h, first_source, as_of, cfg))
     return out

@@ -63,6 +63,9 @@ def _build_parser() -> argparse.ArgumentParser:
     r.add_argument("--full-refresh", action="store_true", help="re-pull every hour instead of only recent ones")
     r.add_argument("--wait", type=float, default=0.0, metavar="SECONDS",
                    help="wait this long for another running cycle to finish (default: step aside at once)")
+    r.add_argument("--quiet", "-q", action="store_true",
+                   help="for cron: print nothing unless alerts opened, escalated or resolved (one line each) "
+                        "or the run failed")
     _observability_options(r)
 
     v = sub.add_parser("validate", help="check the config, connect, and compile every query without running it",
@@ -98,13 +101,22 @@ def _build_parser() -> argparse.ArgumentParser:
     _observability_options(sv)
 
     rp = sub.add_parser("replay", help="replay the monitor over a past period on a throw-away state store",
-                        description="Run one cycle at every step from --from to --to against a temporary state store "
-                                    "(the configured one is neither read nor written, nothing is sent) and report when "
-                                    "each alert would have opened, escalated and closed.")
+                        description="Evaluate the checks at every step from --from to --to on a throw-away state "
+                                    "(the configured store is neither read nor written, nothing is sent) and report when "
+                                    "each alert would have opened, escalated and closed. By default the assignment "
+                                    "counts are pulled once and the allocation checks evaluated at every step on the "
+                                    "counts as they stood then; metric checks run every --metrics-every. --exact runs "
+                                    "a whole cycle at every step instead (slow).")
     common(rp)
     rp.add_argument("--from", dest="start", required=True, metavar="TIME", help="first step (ISO 8601)")
     rp.add_argument("--to", dest="end", required=True, metavar="TIME", help="last step (ISO 8601)")
-    rp.add_argument("--every", default="1h", metavar="STEP", help="step between cycles: 30m, 1h, 6h, 1d (default 1h)")
+    rp.add_argument("--every", default="1h", metavar="STEP", help="step between evaluations: 1h, 6h, 1d (default 1h)")
+    rp.add_argument("--metrics-every", default="1d", metavar="STEP",
+                    help="how often the metric (guardrail) checks run during the replay (default 1d); "
+                         "their findings stand in between")
+    rp.add_argument("--exact", action="store_true",
+                    help="run a whole cycle (incremental pulls, lookback and all) at every step, as a scheduled "
+                         "deployment would: slow, for checking the fast replay")
     rp.add_argument("--onset", action="append", default=[], metavar="EXPERIMENT[:CHECK]=TIME",
                     help="a known onset, to report the detection delay (repeatable)")
     rp.add_argument("--allocation-only", action="store_true",
@@ -172,13 +184,15 @@ def _setup_logging(verbose: bool, console: Console) -> None:
 
 def _run(cfg: Config, args: argparse.Namespace, console: Console, err: Console, *, as_of: datetime | None) -> int:
     from monitor.cycle import run_cycle
+    from monitor.findings import SEVERITY_NAMES
     from monitor.report import print_text, to_json_text
     from monitor.state import LockHeld
 
     fmt = args.format or cfg.output
+    quiet = bool(getattr(args, "quiet", False))
     t0 = time.monotonic()
     status = None
-    if err.is_terminal and fmt == "text":
+    if err.is_terminal and fmt == "text" and not quiet:
         status = err.status("starting", spinner="dots")
         status.start()
 
@@ -195,7 +209,10 @@ def _run(cfg: Config, args: argparse.Namespace, console: Console, err: Console, 
     except LockHeld as exc:
         if status is not None:
             status.stop()
-        err.print(f"expwatch: {exc}; this run stepped aside", highlight=False)
+        if quiet:
+            log.info("%s; this run stepped aside", exc)
+        else:
+            err.print(f"expwatch: {exc}; this run stepped aside", highlight=False)
         return 0
     except MonitorError:
         _write_metrics(cfg, args, ok=False)
@@ -203,7 +220,12 @@ def _run(cfg: Config, args: argparse.Namespace, console: Console, err: Console, 
     finally:
         if status is not None:
             status.stop()
-    if fmt == "json":
+    if quiet:
+        for ev in result.events:
+            if ev.notifiable:
+                sys.stdout.write(f"{ev.kind} {SEVERITY_NAMES.get(ev.severity, ev.severity)}: "
+                                 f"{ev.experiment} · {ev.check} · {ev.scope}: {ev.summary}\n")
+    elif fmt == "json":
         sys.stdout.write(to_json_text(result) + "\n")
     else:
         print_text(result, console)
@@ -265,7 +287,9 @@ def _replay(cfg: Config, args: argparse.Namespace, err: Console) -> int:
     def on_step(i: int, n: int, as_of: datetime) -> None:
         log.info("replay step %d/%d: %s (%.0fs)", i + 1, n, as_of.isoformat(), time.monotonic() - t0)
 
-    report = replay(cfg, start, end, every=every, onsets=onsets, allocation_only=args.allocation_only, on_step=on_step)
+    report = replay(cfg, start, end, every=every, onsets=onsets, allocation_only=args.allocation_only,
+                    mode="cycles" if args.exact else "fast", metrics_every=parse_every(args.metrics_every, "--metrics-every"),
+                    on_step=on_step)
     if args.format == "json":
         sys.stdout.write(json.dumps(replay_to_json(report), indent=2, ensure_ascii=False, allow_nan=False) + "\n")
     else:
@@ -410,13 +434,13 @@ def _validate(cfg: Config, console: Console) -> int:
     from monitor.cycle import load_registry
     from monitor.pull import render_source_sql
     from monitor.state import StateStore
-    from monitor.warehouse import Warehouse, safe_url
+    from monitor.warehouse import open_warehouse, safe_url
 
-    wh = Warehouse(cfg.warehouse.url)
+    wh = open_warehouse(cfg.warehouse)
     try:
         console.print(f"config     ok    {cfg.where}")
         exps, problems = load_registry(cfg, wh)
-        console.print(f"warehouse  ok    {safe_url(cfg.warehouse.url)} ({wh.dialect.name}, read-only)")
+        console.print(f"warehouse  ok    {wh.label} ({wh.dialect.name}, read-only)")
         console.print(f"registry   ok    {len(exps)} experiments" + (f", {len(problems)} with registry problems" if problems else ""))
         now = datetime.now(timezone.utc)
         params = {"window_start": now.replace(tzinfo=None), "as_of": now.replace(tzinfo=None),
@@ -447,9 +471,9 @@ def _validate(cfg: Config, console: Console) -> int:
 def _sql(cfg: Config) -> int:
     from monitor.pull import render_source_sql
     from monitor.templates import Quoter, registry_context, render
-    from monitor.warehouse import Warehouse
+    from monitor.warehouse import open_warehouse
 
-    wh = Warehouse(cfg.warehouse.url)
+    wh = open_warehouse(cfg.warehouse)
     try:
         out = []
         if cfg.registry.inline is None:
@@ -539,7 +563,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     if args.command is None:
         parser.print_help()
         return 2
-    width = None if sys.stdout.isatty() else max(120, shutil.get_terminal_size((120, 24)).columns)
+    width = None if sys.stdout.isatty() else max(132, shutil.get_terminal_size((132, 24)).columns)
     console = Console(width=width, highlight=False)
     err = Console(stderr=True, highlight=False)
     _setup_logging(args.verbose, err)

@@ -40,10 +40,41 @@ _ENV_RE = re.compile(r"\$\{([A-Za-z_][A-Za-z0-9_]*)(?::-([^}]*))?\}")
 _Model = ConfigModel
 
 
+class SparkConfig(_Model):
+    """The Spark backend (``monitor.warehouse.SparkWarehouse``): a SparkSession
+    instead of a SQLAlchemy URL."""
+
+    master: str | None = None
+    """``local[N]``, ``spark://host:7077``, ``yarn``, ``k8s://...``; null = what spark-submit set up."""
+    app_name: str = "expwatch"
+    conf: dict[str, str | int | float | bool] = {}
+    """Extra Spark settings for a new session (e.g. spark.sql.shuffle.partitions)."""
+    parquet: dict[str, str] = {}
+    """Temporary view name -> Parquet file or folder (relative paths: to the config file)."""
+    database: str | None = None
+    """Catalog database (or catalog.database) made current, so table names resolve in it."""
+
+    @field_validator("parquet")
+    @classmethod
+    def _view_names(cls, v: dict[str, str]) -> dict[str, str]:
+        for name in v:
+            if not re.fullmatch(r"[A-Za-z_][A-Za-z0-9_]*", name):
+                raise ValueError(f"view name {name!r}: use letters, digits and '_' (a temporary view has no schema part)")
+        return v
+
+
 class WarehouseConfig(_Model):
-    url: str
+    url: str | None = None
     """Any SQLAlchemy URL. Opened read-only where the engine allows it."""
+    spark: SparkConfig | None = None
+    """Instead of url: run the queries on Apache Spark SQL."""
     query_timeout_seconds: Annotated[float, Field(gt=0)] = 600.0
+
+    @model_validator(mode="after")
+    def _one_engine(self) -> WarehouseConfig:
+        if (self.url is None) == (self.spark is None):
+            raise ValueError("give exactly one of 'url' (a SQLAlchemy URL) or 'spark'")
+        return self
 
 
 class StateConfig(_Model):
@@ -140,6 +171,26 @@ class CheckConfig(_Model):
     """Total units (all compared variants) at which the confidence sequences are tightest."""
     guardrail_multiplicity: Literal["none", "bh", "ebh"] = "none"
     """FDR control across the guardrails of one experiment: none, bh (p-values) or ebh (e-values)."""
+    novelty_alpha: Annotated[float, Field(gt=0, lt=0.5)] = 0.05
+    """Novelty check: chance of ever flagging a constant effect in an experiment's phase (spent over daily looks)."""
+    novelty_max_age_days: Annotated[int, Field(ge=2, le=90)] = 28
+    """Novelty check: oldest age (days since first exposure) compared."""
+    novelty_look_days: Annotated[int, Field(ge=1, le=28)] = 7
+    """Novelty check: days between looks (the data end at whole multiples of it since the phase start)."""
+    novelty_min_days: Annotated[int, Field(ge=3, le=90)] = 7
+    """Novelty check: usable ages needed before a trend is judged."""
+    novelty_tolerance: Annotated[float, Field(gt=0, lt=1)] = 0.01
+    """Novelty check: distance from the long-run relative effect counted as stabilised."""
+    spillover_alpha: Annotated[float, Field(gt=0, lt=0.5)] = 0.001
+    """Spillover check: level of the share-trend tests (Bonferroni over an experiment's metrics x treatments x 2)."""
+    spillover_window_days: Annotated[float, Field(gt=0, le=90)] = 7.0
+    """Spillover check: each unit's metric over this long after (and before) its first assignment."""
+    spillover_min_units: Annotated[int, Field(ge=2)] = 200
+    """Spillover check: units per variant a ramp phase needs (with a complete window) to be compared."""
+    collision_alpha: Annotated[float, Field(gt=0, lt=0.5)] = 0.001
+    """Collision check: false discovery rate (BH) over all tested experiment pairs, per test kind."""
+    collision_min_overlap: Annotated[int, Field(ge=2)] = 1000
+    """Collision check: units two live experiments must share before the pair is tested."""
 
     @model_validator(mode="after")
     def _order(self) -> CheckConfig:
@@ -314,6 +365,15 @@ def _format_error(where: str, exc: ValidationError) -> str:
     return f"{where}: {loc}: {msg}{tail}"
 
 
+def _resolve_warehouse(wh: WarehouseConfig, base: Path) -> WarehouseConfig:
+    """Relative DuckDB/SQLite URLs and Spark Parquet paths, relative to the config file."""
+    if wh.spark is None:
+        return wh.model_copy(update={"url": _resolve_file_url(wh.url or "", base)})
+    paths = {k: v if re.match(r"^[A-Za-z][A-Za-z0-9+.-]*:", v) or Path(v).is_absolute() else str((base / v).resolve())
+             for k, v in wh.spark.parquet.items()}
+    return wh.model_copy(update={"spark": wh.spark.model_copy(update={"parquet": paths})})
+
+
 def _resolve_file_url(url: str, base: Path) -> str:
     """Make ``sqlite:///rel.db`` and ``duckdb:///rel.duckdb`` relative to the config file."""
     m = re.match(r"^(sqlite|duckdb)(\+\w+)?:///(.*)$", url)
@@ -367,7 +427,7 @@ def parse_config(data: Any, *, where: str = "<config>", base_dir: Path | None = 
         cfg = Config.model_validate(data)
     except ValidationError as exc:
         raise ConfigError(_format_error(where, exc)) from None
-    wh = cfg.warehouse.model_copy(update={"url": _resolve_file_url(cfg.warehouse.url, base)})
+    wh = _resolve_warehouse(cfg.warehouse, base)
     state_url = cfg.state.url or f"sqlite:///{(base / 'expwatch-state.sqlite').resolve()}"
     st = cfg.state.model_copy(update={"url": _resolve_file_url(state_url, base)})
     cfg = cfg.model_copy(update={"warehouse": wh, "state": st})

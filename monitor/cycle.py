@@ -10,6 +10,7 @@ either all of its work or none of it.
 from __future__ import annotations
 
 import logging
+import time
 import uuid
 from contextlib import nullcontext
 from pathlib import Path
@@ -22,19 +23,22 @@ from datetime import datetime, timezone
 
 from monitor import ledger, outbox
 from monitor.checks import allocation_findings, design_findings
+from monitor.collision import collision_findings, pull_collisions
 from monitor.config import Config
 from monitor.errors import ConfigError, MonitorError, WarehouseError
 from monitor.explain import attach_diagnoses
 from monitor.findings import Finding
 from monitor.guardrails import MetricSnapshot, guardrail_findings, pull_metrics
 from monitor.ledger import AlertEvent
+from monitor.novelty import novelty_findings, pull_novelty
 from monitor.pull import PulledSource, pull_sources
 from monitor.registry import Experiment, RegistryProblem, experiments_from_frame, experiments_from_inline
+from monitor.spillover import pull_spillover, spillover_findings
 from monitor.state import StateStore
 from monitor.templates import Quoter, registry_context, render
-from monitor.warehouse import Tracer, Warehouse
+from monitor.warehouse import Tracer, Warehouse, open_warehouse
 
-__all__ = ["CycleResult", "load_registry", "run_cycle"]
+__all__ = ["CycleResult", "load_registry", "metric_findings", "run_cycle"]
 
 log = logging.getLogger("monitor")
 
@@ -52,6 +56,8 @@ class CycleResult:
     note: str | None = None
     query_seconds: dict[str, float] = field(default_factory=dict)
     metric_snapshots: list[MetricSnapshot] = field(default_factory=list)
+    check_seconds: dict[str, float] = field(default_factory=dict)
+    """Wall time per check (``allocation`` and each metric check, its own queries included)."""
 
 
 def load_registry(cfg: Config, wh: Warehouse | None) -> tuple[list[Experiment], list[RegistryProblem]]:
@@ -61,6 +67,37 @@ def load_registry(cfg: Config, wh: Warehouse | None) -> tuple[list[Experiment], 
     sql = render("registry.sql.j2", wh.dialect, **registry_context(cfg.registry, Quoter(wh.dialect)))
     frame = wh.query("registry", sql, {})
     return experiments_from_frame(frame, cfg.registry)
+
+
+def metric_findings(
+    cfg: Config, wh: Warehouse, live: list[Experiment], as_of: datetime,
+    *, on_step: Callable[[str], None] | None = None, timings: dict[str, float] | None = None,
+) -> tuple[list[Finding], list[MetricSnapshot]]:
+    """Every check that reads metric events: read-only queries, then findings.
+
+    A cycle calls it once; a replay (:mod:`monitor.replay`) calls it at its metric
+    steps, so a metric-level check added here is replayed too.
+    """
+    timings = {} if timings is None else timings
+    t = time.perf_counter()
+    # guardrails: one read-only query per metric
+    pulls = pull_metrics(cfg, wh, live, as_of, on_query=(lambda n: on_step(f"metric[{n}]")) if on_step else None)
+    metric_result = guardrail_findings(live, pulls, as_of, cfg.checks)
+    found = list(metric_result.findings)
+    timings["guardrail"], t = time.perf_counter() - t, time.perf_counter()
+    # novelty: one read-only per-age query per primary/guardrail metric
+    ages = pull_novelty(cfg, wh, live, as_of, on_query=on_step)
+    found += novelty_findings(live, ages, as_of, cfg.checks)
+    timings["novelty"], t = time.perf_counter() - t, time.perf_counter()
+    # interference: spillover (one windowed query per metric, ramped experiments only) and
+    # collision (one cross-tab of shared units for all pairs, one query per guardrail)
+    spill = pull_spillover(cfg, wh, live, as_of, on_query=(lambda n: on_step(f"spillover[{n}]")) if on_step else None)
+    found += spillover_findings(live, spill, as_of, cfg.checks)
+    timings["spillover"], t = time.perf_counter() - t, time.perf_counter()
+    coll = pull_collisions(cfg, wh, live, as_of, on_query=(lambda n: on_step(f"collision[{n}]")) if on_step else None)
+    found += collision_findings(live, coll, cfg.checks)
+    timings["collision"] = time.perf_counter() - t
+    return found, list(metric_result.snapshots)
 
 
 def _now() -> datetime:
@@ -102,7 +139,7 @@ def run_cycle(
         state = StateStore("sqlite://", engine=sa.create_engine("sqlite://", poolclass=sa.pool.StaticPool))
     else:
         state = StateStore(cfg.state.url or "", migrate=not dry_run)
-    wh = Warehouse(cfg.warehouse.url, tracer=tracer, timeout_seconds=cfg.warehouse.query_timeout_seconds)
+    wh = open_warehouse(cfg.warehouse, tracer=tracer)
     notifying = notify and not dry_run and _wants_notifications(cfg)
     try:
         lock_cm = state.lock(wait_seconds=wait_seconds) if not dry_run else nullcontext()
@@ -116,16 +153,18 @@ def run_cycle(
             if on_step:
                 on_step("checks")
             counts = {s.name: s.counts for s in sources}
+            timings: dict[str, float] = {}
+            t_check = time.perf_counter()
             found = design_findings(problems) + allocation_findings(live, counts, cfg.sources[0].name, as_of, cfg.checks)
             # every SRM alert carries its diagnosis (when, which slice, which stage), from the counts already pulled
             found = attach_diagnoses(found, counts, live, cfg, as_of=as_of)
+            timings["allocation"] = time.perf_counter() - t_check
             # guardrails: one read-only query per metric, before anything is written
-            pulls = pull_metrics(cfg, wh, live, as_of, on_query=(lambda n: on_step(f"metric[{n}]")) if on_step else None)
-            metric_result = guardrail_findings(live, pulls, as_of, cfg.checks)
-            found += list(metric_result.findings)
+            metric_found, snapshots = metric_findings(cfg, wh, live, as_of, on_step=on_step, timings=timings)
+            found += metric_found
             result = CycleResult(run_id, as_of, live, found, [], sources, problems,
                                  query_seconds={s.name: s.seconds for s in wh.stats},
-                                 metric_snapshots=list(metric_result.snapshots))
+                                 metric_snapshots=snapshots, check_seconds=timings)
             last = state.last_run_as_of() if not dry_run else None
             backtest = any(not s.persist for s in sources) or (last is not None and as_of < last)
             if dry_run:
@@ -144,6 +183,7 @@ def run_cycle(
                 if notifying:
                     outbox.enqueue(conn, run_id, as_of, result.events, cfg.notify, live)
                 StateStore.record_metric_snapshots(conn, run_id, as_of, result.metric_snapshots)
+                StateStore.record_query_costs(conn, run_id, wh.stats)
                 StateStore.record_run(conn, run_id, started, as_of, "ok", {
                     "experiments": len(live), "findings": len(found),
                     "queries": [{"name": q.name, "seconds": round(q.seconds, 4), "rows": q.rows} for q in wh.stats],

@@ -2,7 +2,7 @@
 
 Patrons of the library app borrow e-books and audiobooks, read in an in-app reader
 and join hold queues when licences are limited. This module simulates a small
-warehouse for that app, with thirteen experiments, some of them carrying planted
+warehouse for that app, with over a dozen experiments, some of them carrying planted
 trust problems whose location and onset are known by construction, so that every
 check expwatch runs can be demonstrated (and tested end to end) against an
 answer key.
@@ -16,6 +16,7 @@ Tables (timestamps are naive UTC)::
     page_renders          unit_id, rendered_at, render_ms
     loans                 unit_id, loaned_at, cancelled
     app_errors            unit_id, occurred_at, error_code
+    holds                 unit_id, placed_at, wait_hours
 
 How the data are generated
 --------------------------
@@ -31,7 +32,11 @@ How the data are generated
   segments.
 * Faults attached to an experiment spec (``skew``, ``crash``, ``leak``,
   ``stale``, ``bot_trip``) distort the logs in one documented way each, and each
-  describes itself as a :class:`PlantedProblem`.
+  describes itself as a :class:`PlantedProblem`. Two more act across units:
+  ``contention`` (:class:`LicenceContention`: treatment and control compete for
+  the same licences, so hold waits depend on the treatment share) and
+  ``bucketing`` (:class:`BucketSharing`: an experiment reuses another's hash, so
+  their variants are correlated on the units they share).
 * Metric events start :data:`PRE_PERIOD_DAYS` days before the first experiment
   (a pre-period, e.g. for CUPED) and run to :data:`DEMO_AS_OF`. A
   :class:`MetricEffect` scales one numeric event column for the events of a
@@ -69,9 +74,11 @@ __all__ = [
     "TABLE_SCHEMAS",
     "AllocationSkew",
     "BotFilterTrip",
+    "BucketSharing",
     "DemoSummary",
     "ExperimentSpec",
     "Leakage",
+    "LicenceContention",
     "LoggingCrash",
     "MetricEffect",
     "PhaseSpec",
@@ -142,6 +149,7 @@ TABLE_SCHEMAS: dict[str, tuple[tuple[str, str], ...]] = {
     "page_renders": (("unit_id", "VARCHAR"), ("rendered_at", "TIMESTAMP"), ("render_ms", "DOUBLE")),
     "loans": (("unit_id", "VARCHAR"), ("loaned_at", "TIMESTAMP"), ("cancelled", "BOOLEAN")),
     "app_errors": (("unit_id", "VARCHAR"), ("occurred_at", "TIMESTAMP"), ("error_code", "VARCHAR")),
+    "holds": (("unit_id", "VARCHAR"), ("placed_at", "TIMESTAMP"), ("wait_hours", "DOUBLE")),
 }
 
 _SEGMENT_COLUMNS = {"platform": PLATFORMS, "region": REGIONS, "patron_type": PATRON_TYPES}
@@ -150,6 +158,7 @@ _EVENT_TIME_COLUMN = {
     "page_renders": "rendered_at",
     "loans": "loaned_at",
     "app_errors": "occurred_at",
+    "holds": "placed_at",
 }
 
 
@@ -166,8 +175,9 @@ class PlantedProblem:
         Experiment id.
     check : str
         The check that should see it: ``"srm"``, ``"leakage"``, ``"freshness"``,
-        ``"guardrail"``, or ``"effect"`` (a real treatment effect that must *not*
-        raise an alert).
+        ``"guardrail"``, ``"novelty"`` (an effect that changes with days since
+        first exposure: a ``novelty`` warning), or ``"effect"`` (a real treatment
+        effect that must *not* raise an alert).
     stage : str or None
         ``"assigned"`` or ``"filtered"`` for ``"srm"`` (the first stage where the
         imbalance appears; it carries through to later stages), else None.
@@ -367,9 +377,12 @@ class BotFilterTrip:
 class MetricEffect:
     """Scale one numeric event column for a variant's units after their first assignment.
 
-    The multiplier at time ``t`` after a unit's first assignment is
-    ``1 + lift`` or, with ``fade_days``, ``1 + lift * exp(-t / fade_days)``
-    (a fading novelty effect).
+    The multiplier at time ``t`` (days) after a unit's first assignment is
+    ``1 + lift`` or, with ``fade_days``,
+    ``1 + long_run_lift + (lift - long_run_lift) * exp(-max(t - hold_days, 0) / fade_days)``:
+    ``lift`` for the first ``hold_days``, then an exponential approach to
+    ``long_run_lift`` (a fading novelty effect when ``|long_run_lift| < |lift|``,
+    a growing primacy or learning effect when it is larger).
 
     Attributes
     ----------
@@ -387,7 +400,11 @@ class MetricEffect:
     description : str
         One plain sentence for the answer key.
     fade_days : float or None
-        E-folding time of a fading effect; None for a constant effect.
+        E-folding time of a time-varying effect; None for a constant effect.
+    long_run_lift : float
+        The relative change the effect approaches (with ``fade_days``).
+    hold_days : float
+        Days the effect stays at ``lift`` before it starts to change.
     """
 
     table: str
@@ -397,9 +414,71 @@ class MetricEffect:
     check: str
     description: str
     fade_days: float | None = None
+    long_run_lift: float = 0.0
+    hold_days: float = 0.0
 
     def planted(self, experiment_id: str, as_of: datetime) -> PlantedProblem:
         return PlantedProblem(experiment_id, self.check, None, self.description)
+
+
+@dataclass(frozen=True)
+class LicenceContention:
+    """Treatment and control compete for the same limited e-book licences.
+
+    Units of ``variant`` act on a freed licence first, so they wait less for their holds,
+    and the control waits longer; the more units are treated, the more they compete with
+    each other. At treatment share ``s`` (the designed share of the phase in force when the
+    hold is placed) a hold's wait is multiplied by ``1 - advantage * (1 - s)^2`` for a
+    treatment unit and by ``1 + advantage * s * (1 - s)`` for a control unit (after their
+    first assignment), which keeps the mean wait over both groups unchanged: the licences
+    are only redistributed. The treatment-versus-control contrast therefore shrinks as the
+    share ramps up while the control's own wait rises.
+
+    Attributes
+    ----------
+    variant : str
+        The variant that takes licences first.
+    advantage : float
+        Strength of the head start, in (0, 1).
+    """
+
+    variant: str
+    advantage: float
+
+    def planted(self, experiment_id: str, as_of: datetime) -> PlantedProblem:
+        return PlantedProblem(
+            experiment_id, "spillover", None,
+            f"Units of the {self.variant} variant take freed licences before control units, so hold waits of the two groups "
+            "are not independent: the measured effect shrinks as the treatment share ramps up and control waits rise.",
+        )
+
+
+@dataclass(frozen=True)
+class BucketSharing:
+    """Two experiments bucket units with the same hash, so their variants are correlated.
+
+    Put it on both experiments of the pair: on the one whose variants are copied with
+    ``follows=False`` (its data are unchanged) and on the other with ``follows=True``: a unit in
+    both gets the partner's variant index (the partner must come earlier in
+    :data:`EXPERIMENTS` and have as many variants).
+
+    Attributes
+    ----------
+    partner : str
+        The other experiment's id.
+    follows : bool
+        True for the experiment whose variants are copied from the partner's.
+    """
+
+    partner: str
+    follows: bool
+
+    def planted(self, experiment_id: str, as_of: datetime) -> PlantedProblem:
+        return PlantedProblem(
+            experiment_id, "collision", None,
+            f"The experiment shares its bucketing hash with {self.partner!r}: a unit in both gets the same "
+            "variant index in each, so their assignments are correlated.",
+        )
 
 
 @dataclass(frozen=True)
@@ -437,6 +516,8 @@ class ExperimentSpec:
     stale: StaleLog | None = None
     bot_trip: BotFilterTrip | None = None
     effects: tuple[MetricEffect, ...] = field(default=())
+    contention: LicenceContention | None = None
+    bucketing: BucketSharing | None = None
 
     @property
     def status(self) -> str:
@@ -444,7 +525,8 @@ class ExperimentSpec:
 
     def planted(self, as_of: datetime) -> tuple[PlantedProblem, ...]:
         """The answer-key entries of this experiment's faults and effects."""
-        faults = (self.skew, self.crash, self.leak, self.stale, self.bot_trip, *self.effects)
+        faults = (self.skew, self.crash, self.leak, self.stale, self.bot_trip, *self.effects,
+                  self.contention, self.bucketing)
         return tuple(f.planted(self.experiment_id, as_of) for f in faults if f is not None)
 
 
@@ -455,7 +537,7 @@ def _d(day: int, hour: int = 10) -> datetime:
 _HALF = (0.5, 0.5)
 _THIRD = 1.0 / 3.0
 
-#: The demo's experiments (12 live, 1 ended), in registry order.
+#: The demo's experiments (all live but one), in registry order.
 EXPERIMENTS: tuple[ExperimentSpec, ...] = (
     ExperimentSpec(
         "quick-borrow-button", "One-tap borrow button on title pages", "lending-team",
@@ -526,6 +608,42 @@ EXPERIMENTS: tuple[ExperimentSpec, ...] = (
         ("control", "treatment"), (PhaseSpec(_d(3), _HALF),), 3000,
         stop=DEMO_AS_OF - timedelta(days=10),
         skew=AllocationSkew((0.56, 0.44)),
+    ),
+    ExperimentSpec(
+        "reading-streak-badge", "Badge for reading on consecutive days", "engagement-team",
+        ("control", "treatment"), (PhaseSpec(_d(8), _HALF),), 6000,
+        effects=(MetricEffect(
+            "reading_sessions", "minutes", "treatment", 0.15, "novelty",
+            "Reading minutes are 15% higher for treatment units on days 0-2 after assignment, then the "
+            "effect fades to about 1% by day 14 (a novelty effect).",
+            fade_days=2.5, long_run_lift=0.01, hold_days=3.0,
+        ),),
+    ),
+    ExperimentSpec(
+        "reader-swipe-pages", "Swipe gestures to turn pages in the reader", "reader-team",
+        ("control", "treatment"), (PhaseSpec(_d(6), _HALF),), 7000,
+        effects=(MetricEffect(
+            "reading_sessions", "minutes", "treatment", -0.12, "novelty",
+            "Reading minutes of treatment units are 12% lower at first, while patrons learn the gestures, "
+            "then rise towards +14% (about +10% by day 6; a primacy or learning effect).",
+            fade_days=3.0, long_run_lift=0.14,
+        ),),
+    ),
+    ExperimentSpec(
+        "licence-queue-reminder", "Reminder to collect a held title the moment a licence frees up",
+        "notifications-team", ("control", "treatment"),
+        (PhaseSpec(_d(11), (0.9, 0.1)), PhaseSpec(_d(15), (0.75, 0.25)), PhaseSpec(_d(19), _HALF)), 3000,
+        contention=LicenceContention("treatment", 0.6),
+    ),
+    ExperimentSpec(
+        "title-page-reviews", "Patron reviews on title pages", "discovery-team",
+        ("control", "treatment"), (PhaseSpec(_d(15), _HALF),), 2000,
+        bucketing=BucketSharing("review-after-return", follows=False),
+    ),
+    ExperimentSpec(
+        "review-after-return", "Prompt to review a title after returning it", "discovery-team",
+        ("control", "treatment"), (PhaseSpec(_d(18), _HALF),), 2000,
+        bucketing=BucketSharing("title-page-reviews", follows=True),
     ),
 )
 
@@ -628,7 +746,14 @@ def _validate(specs: tuple[ExperimentSpec, ...], as_of: datetime) -> None:
         for w in weight_sets:
             if len(w) != nv or min(w) < 0 or abs(sum(w) - 1.0) > 1e-9:
                 raise ConfigError(f"demo experiment {eid!r} has weights that do not match its variants")
-        for f in (s.crash, s.bot_trip, *s.effects):
+        if s.contention is not None and not (0 < s.contention.advantage < 1):
+            raise ConfigError(f"demo experiment {eid!r} has a licence contention advantage outside (0, 1)")
+        if s.bucketing is not None and s.bucketing.follows:
+            partner = next((p for p in specs if p.experiment_id == s.bucketing.partner), None)
+            if partner is None or partner.experiment_id not in seen or len(partner.variants) != nv:
+                raise ConfigError(f"demo experiment {eid!r} follows the buckets of {s.bucketing.partner!r}, "
+                                  "which must come earlier and have as many variants")
+        for f in (s.crash, s.bot_trip, *s.effects, s.contention):
             if f is not None and f.variant not in s.variants:
                 raise ConfigError(f"demo experiment {eid!r} has a fault on unknown variant {f.variant!r}")
         if s.crash is not None and any(
@@ -780,13 +905,14 @@ def _apply_effects(values: np.ndarray, unit: np.ndarray, t: np.ndarray, effects:
         first[units] = t_first
         after = t >= first[unit]
         age_days = (t[after] - first[unit[after]]) / 86400.0
-        decay = np.exp(-age_days / eff.fade_days) if eff.fade_days else 1.0
-        out[after] *= 1.0 + eff.lift * decay
+        decay = np.exp(-np.maximum(age_days - eff.hold_days, 0.0) / eff.fade_days) if eff.fade_days else 1.0
+        out[after] *= 1.0 + eff.long_run_lift + (eff.lift - eff.long_run_lift) * decay
     return out
 
 
 def _event_tables(pop: _Population, seed: int, t0: int, t1: int,
-                  effects: dict[tuple[str, str], list]) -> dict[str, pd.DataFrame]:
+                  effects: dict[tuple[str, str], list],
+                  contention: list | None = None) -> dict[str, pd.DataFrame]:
     """Metric event tables for the whole population on ``[t0, t1)``."""
     rng = _rng(seed, "events")
     days = (t1 - t0) / 86400.0
@@ -819,7 +945,45 @@ def _event_tables(pop: _Population, seed: int, t0: int, t1: int,
     u, t = draw(0.004 * pop.error_prone)
     codes = np.array(ERROR_CODES, dtype=object)[rng.choice(len(ERROR_CODES), size=u.size, p=ERROR_CODE_P)]
     out["app_errors"] = pd.DataFrame({"unit_id": pop.ids[u], "occurred_at": _to_ts(t), "error_code": codes})
+
+    u, t = draw(0.08 * pop.activity)
+    wait = rng.lognormal(np.log(30.0), 0.6, size=u.size)
+    wait = _apply_contention(wait, u, t, contention or [], pop.n)
+    out["holds"] = pd.DataFrame({"unit_id": pop.ids[u], "placed_at": _to_ts(t), "wait_hours": np.round(wait, 1)})
     return out
+
+
+def _apply_contention(wait: np.ndarray, unit: np.ndarray, t: np.ndarray, contention: list,
+                      n_patrons: int) -> np.ndarray:
+    """Scale hold waits of an experiment's units after their first assignment (:class:`LicenceContention`).
+
+    ``contention`` holds ``(ExperimentSpec, _ExperimentRows)`` pairs.
+    """
+    out = wait.astype(np.float64, copy=True)
+    for spec, r in contention:
+        c = spec.contention
+        first = np.full(n_patrons, np.iinfo(np.int64).max, dtype=np.int64)
+        var = np.full(n_patrons, -1, dtype=np.int64)
+        first[r.first_unit] = r.first_time
+        var[r.first_unit] = r.first_variant
+        after = t >= first[unit]
+        starts = np.array([_secs(p.start) for p in spec.phases], dtype=np.int64)
+        phase = np.clip(np.searchsorted(starts, t[after], side="right") - 1, 0, len(spec.phases) - 1)
+        share = 1.0 - np.array([p.weights[0] for p in spec.phases])[phase]
+        treated = var[unit[after]] == spec.variants.index(c.variant)
+        a = c.advantage
+        out[after] *= np.where(treated, 1.0 - a * (1.0 - share) ** 2, 1.0 + a * share * (1.0 - share))
+    return out
+
+
+def _follow_buckets(r: _ExperimentRows, partner: _ExperimentRows, n_patrons: int) -> _ExperimentRows:
+    """Give the units shared with ``partner`` the partner's variant index (:class:`BucketSharing`)."""
+    lookup = np.full(n_patrons, -1, dtype=np.int64)
+    lookup[partner.first_unit] = partner.first_variant
+    row_v = lookup[r.unit]
+    first_v = lookup[r.first_unit]
+    return replace(r, variant=np.where(row_v >= 0, row_v, r.variant).astype(r.variant.dtype),
+                   first_variant=np.where(first_v >= 0, first_v, r.first_variant).astype(r.first_variant.dtype))
 
 
 # --------------------------------------------------------------------------- public
@@ -838,8 +1002,15 @@ def _build(specs: tuple[ExperimentSpec, ...], seed: int, as_of: datetime
     var_names_list: list[str] = []
     parts = []
     effects: dict[tuple[str, str], list] = {}
+    contention: list = []
+    rows_by_id: dict[str, _ExperimentRows] = {}
     for code, s in enumerate(specs):
         r = _experiment_rows(s, pop, seed, as_of)
+        if s.bucketing is not None and s.bucketing.follows:
+            r = _follow_buckets(r, rows_by_id[s.bucketing.partner], pop.n)
+        rows_by_id[s.experiment_id] = r
+        if s.contention is not None:
+            contention.append((s, r))
         offset = len(var_names_list)
         var_names_list.extend(s.variants)
         parts.append((code, offset, r))
@@ -863,7 +1034,7 @@ def _build(specs: tuple[ExperimentSpec, ...], seed: int, as_of: datetime
 
     first_start = min(s.phases[0].start for s in specs)
     ev_start = (first_start - timedelta(days=PRE_PERIOD_DAYS)).replace(hour=0, minute=0, second=0)
-    tables.update(_event_tables(pop, seed, _secs(ev_start), _secs(as_of), effects))
+    tables.update(_event_tables(pop, seed, _secs(ev_start), _secs(as_of), effects, contention))
 
     planted = tuple(p for s in specs for p in s.planted(as_of))
     problem_exps = {p.experiment for p in planted if p.check != "effect"}

@@ -62,6 +62,16 @@ metrics:
     columns: {timestamp: started_at, value: minutes}
     aggregate: sum
     cuped: {pre_period_days: 14}
+  - name: hold_wait_hours       # hours a hold waits for a licence, per hold (diagnostic: reported, never alerts)
+    role: diagnostic
+    kind: ratio
+    table: holds
+    columns: {timestamp: placed_at, value: wait_hours}
+    aggregate: sum
+    denominator:
+      table: holds
+      columns: {timestamp: placed_at}
+      aggregate: count
 """
 
 

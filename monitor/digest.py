@@ -307,13 +307,36 @@ def build_digest(state_engine: Engine, *, since: datetime | None = None, experim
                     f"alerts: {len(new)} new, {len(ongoing)} ongoing, {len(resolved)} resolved")
     subject = f"{subject_prefix} digest {as_of:%Y-%m-%d}: {headline}" if as_of else f"{subject_prefix} digest: {headline}"
     subject = subject.strip()
-    ctx = {"as_of": as_of, "since": since, "experiments": exps, "checks": check_names, "new": new, "ongoing": ongoing,
+    ctx = {"cost": _run_cost(state_engine, last["run_id"]) if last else None,
+           "as_of": as_of, "since": since, "experiments": exps, "checks": check_names, "new": new, "ongoing": ongoing,
            "resolved": resolved, "headline": headline, "decision_support": DECISION_SUPPORT,
            "run_id": last["run_id"] if last else None}
     html = _template("digest.html.j2", True).render(**ctx)
     text = _template("digest.txt.j2", False).render(**ctx)
     return Digest(subject, text, html, images, as_of, since, tuple(exps), tuple(new), tuple(ongoing), tuple(resolved),
                   last["run_id"] if last else None)
+
+
+def _run_cost(state_engine: Engine, run_id: str) -> str | None:
+    """One line on the warehouse work of the run: queries, rows returned and, where
+    the engine reported them, rows and bytes scanned (``expwatch_query_costs``)."""
+    from monitor.observe import format_count
+    from monitor.state import query_costs
+
+    if not sa.inspect(state_engine).has_table(query_costs.name):
+        return None
+    with state_engine.connect() as conn:
+        rows = conn.execute(sa.select(query_costs.c.rows_returned, query_costs.c.rows_scanned, query_costs.c.bytes_scanned)
+                            .where(query_costs.c.run_id == run_id)).all()
+    if not rows:
+        return None
+    parts = [f"{len(rows)} warehouse quer{'y' if len(rows) == 1 else 'ies'}",
+             f"{format_count(sum(int(r[0]) for r in rows))} rows returned"]
+    if all(r[1] is not None for r in rows):
+        parts.append(f"{format_count(sum(int(r[1]) for r in rows))} rows scanned")
+    if all(r[2] is not None for r in rows):
+        parts.append(f"{format_count(sum(int(r[2]) for r in rows))}B read")
+    return "Warehouse cost of this run: " + ", ".join(parts) + " (as the engine reports it)."
 
 
 def _check_order(c: str) -> int:

@@ -964,13 +964,13 @@ def explain_experiment(cfg: Config, experiment_id: str, *, as_of: datetime | Non
     from monitor.cycle import load_registry
     from monitor.pull import pull_sources
     from monitor.state import StateStore
-    from monitor.warehouse import Warehouse
+    from monitor.warehouse import open_warehouse
 
     now = datetime.now(timezone.utc)
     as_of = now if as_of is None else (as_of.replace(tzinfo=timezone.utc) if as_of.tzinfo is None else as_of.astimezone(timezone.utc))
     if as_of > now:
         raise ConfigError(f"--as-of {as_of.isoformat()} is in the future")
-    wh = Warehouse(cfg.warehouse.url, timeout_seconds=cfg.warehouse.query_timeout_seconds)
+    wh = open_warehouse(cfg.warehouse)
     # an empty store in memory: explain never reads or writes the real one
     state = StateStore("sqlite://", engine=sa.create_engine("sqlite://", poolclass=sa.pool.StaticPool), migrate=False)
     try:

@@ -28,6 +28,7 @@ __all__ = [
     "RunContextFilter",
     "RunSummary",
     "StatusReport",
+    "format_count",
     "log_cycle",
     "metrics_text",
     "query_records",
@@ -151,13 +152,26 @@ def _run_detail(state_url: str, run_id: str) -> dict[str, Any] | None:
         return None
 
 
+#: check-timing groups of :func:`monitor.cycle.run_cycle` and the finding check names they produce
+_CHECK_GROUPS = {"allocation": ("srm", "leakage", "unknown_variant", "freshness", "design")}
+
+
 def log_cycle(result: Any, seconds: float, state_url: str | None = None, logger: logging.Logger = log) -> None:
-    """Log one line per warehouse query and one summary line for a finished cycle,
+    """Log one line per warehouse query, one per check (computation time, including its own
+    queries for the metric checks, and findings) and one summary line for a finished cycle,
     each carrying ``run_id`` (structured fields for :class:`JsonFormatter`)."""
     for q in query_records(result, state_url):
         logger.info("query %s: %.3fs, %s rows", q.name, q.seconds, "?" if q.rows is None else q.rows,
                     extra={"event": "query", "run_id": result.run_id, "query": q.name,
                            "seconds": round(q.seconds, 4), "rows": q.rows})
+    by_check: dict[str, int] = {}
+    for f in result.findings:
+        by_check[f.check] = by_check.get(f.check, 0) + 1
+    for name, secs in (getattr(result, "check_seconds", {}) or {}).items():
+        n = sum(v for k, v in by_check.items() if k in _CHECK_GROUPS.get(name, (name,)))
+        logger.info("checks %s: %.3fs, %d findings", name, secs, n,
+                    extra={"event": "check", "run_id": result.run_id, "check": name,
+                           "seconds": round(secs, 4), "findings": n})
     kinds: dict[str, int] = {}
     for e in result.events:
         kinds[e.kind] = kinds.get(e.kind, 0) + 1
@@ -184,6 +198,13 @@ class RunSummary:
     seconds: float | None
     experiments: int | None
     findings: int | None
+    rows_returned: int | None = None
+    """Rows the run's warehouse queries returned (None: not recorded)."""
+    rows_scanned: int | None = None
+    """Rows the engine reports its scans read, summed over the run's queries; None
+    unless every query reported it (DuckDB and Spark do, PostgreSQL does not)."""
+    bytes_scanned: int | None = None
+    """Bytes the engine reports, likewise (DuckDB: read from storage; Spark: size of the files scanned)."""
 
 
 @dataclass(frozen=True)
@@ -242,7 +263,7 @@ def read_status(state_url: str, limit: int = 10) -> StatusReport:
     StateError
         The store cannot be read.
     """
-    from monitor.state import StateStore, alerts, runs
+    from monitor.state import StateStore, alerts, query_costs, runs
 
     if limit < 1:
         raise ConfigError(f"--limit: must be at least 1, got {limit}")
@@ -250,10 +271,12 @@ def read_status(state_url: str, limit: int = 10) -> StatusReport:
         return StatusReport((), {}, None, False)
     store = StateStore(state_url, migrate=False)
     try:
-        if store.schema_version() == 0:
+        version = store.schema_version()
+        if version == 0:
             return StatusReport((), {}, None, False)
         rows = store.recent_runs(limit)
         with store.engine.connect() as c:
+            costs = _cost_totals(c, query_costs, [r["run_id"] for r in rows]) if version >= 4 else {}
             last_ok = c.execute(sa.select(sa.func.max(runs.c.finished_at)).where(runs.c.outcome == "ok")).scalar()
             grouped = c.execute(sa.select(alerts.c.check_name, alerts.c.severity, sa.func.count())
                                 .where(alerts.c.state == "open").group_by(alerts.c.check_name, alerts.c.severity)).all()
@@ -272,12 +295,38 @@ def read_status(state_url: str, limit: int = 10) -> StatusReport:
         secs = (r["finished_at"] - r["started_at"]).total_seconds() if r["finished_at"] else None
         summaries.append(RunSummary(r["run_id"], r["started_at"], r["finished_at"], r["as_of"], r["outcome"],
                                     None if secs is None else max(0.0, secs),
-                                    detail.get("experiments"), detail.get("findings")))
+                                    detail.get("experiments"), detail.get("findings"), *costs.get(r["run_id"], (None, None, None))))
     open_by: dict[tuple[str, str], int] = {}
     for check, sev, n in grouped:
         key = (str(check), SEVERITY_NAMES.get(int(sev), str(sev)))
         open_by[key] = open_by.get(key, 0) + int(n)
     return StatusReport(tuple(summaries), dict(sorted(open_by.items())), last_ok, True)
+
+
+def _cost_totals(conn: sa.Connection, table: sa.Table, run_ids: list[str]) -> dict[str, tuple[int, int | None, int | None]]:
+    """Per run: rows returned, rows scanned and bytes scanned (a scan total is None
+    when any query of the run did not report it)."""
+    if not run_ids:
+        return {}
+    n = sa.func.count()
+    q = (sa.select(table.c.run_id, sa.func.sum(table.c.rows_returned), sa.func.sum(table.c.rows_scanned),
+                   sa.func.count(table.c.rows_scanned), sa.func.sum(table.c.bytes_scanned), sa.func.count(table.c.bytes_scanned), n)
+         .where(table.c.run_id.in_(run_ids)).group_by(table.c.run_id))
+    out = {}
+    for run_id, returned, scanned, n_scanned, nbytes, n_bytes, total in conn.execute(q).all():
+        out[str(run_id)] = (int(returned or 0), int(scanned) if n_scanned == total and scanned is not None else None,
+                            int(nbytes) if n_bytes == total and nbytes is not None else None)
+    return out
+
+
+def format_count(n: int | None) -> str:
+    """A row or byte count for people: 1234 -> 1.2k, 5600000 -> 5.6M; None -> '-'."""
+    if n is None:
+        return "-"
+    for div, unit in ((10**12, "T"), (10**9, "G"), (10**6, "M"), (10**3, "k")):
+        if abs(n) >= div:
+            return f"{n / div:.1f}{unit}"
+    return str(n)
 
 
 def render_status_text(report: StatusReport) -> str:
@@ -288,11 +337,16 @@ def render_status_text(report: StatusReport) -> str:
     for (check, sev), n in report.open_alerts.items():
         lines.append(f"  {check:<16} {sev:<9} {n}")
     lines.append("")
-    lines.append(f"{'started (UTC)':<17}  {'as of (UTC)':<17}  {'outcome':<8}  {'seconds':>8}  {'exps':>5}  {'findings':>8}  run id")
+    lines.append(f"{'started (UTC)':<17}  {'as of (UTC)':<17}  {'outcome':<8}  {'seconds':>8}  {'exps':>5}  {'findings':>8}  "
+                 f"{'returned':>8}  {'scanned':>8}  {'bytes':>8}  run id")
     for r in report.runs:
         secs = "" if r.seconds is None else f"{r.seconds:.2f}"
         lines.append(f"{_fmt(r.started_at):<17}  {_fmt(r.as_of):<17}  {r.outcome:<8}  {secs:>8}  "
-                     f"{'' if r.experiments is None else r.experiments:>5}  {'' if r.findings is None else r.findings:>8}  {r.run_id}")
+                     f"{'' if r.experiments is None else r.experiments:>5}  {'' if r.findings is None else r.findings:>8}  "
+                     f"{format_count(r.rows_returned):>8}  {format_count(r.rows_scanned):>8}  {format_count(r.bytes_scanned):>8}  {r.run_id}")
+    if report.runs:
+        lines.append("returned: rows the warehouse queries returned; scanned / bytes: what the engine reports its scans "
+                     "read ('-': the engine does not report it)")
     return "\n".join(lines) + "\n"
 
 
@@ -306,7 +360,8 @@ def status_to_json(report: StatusReport) -> dict[str, Any]:
         "open_alerts_by": [{"check": c, "severity": s, "count": n} for (c, s), n in report.open_alerts.items()],
         "runs": [{"run_id": r.run_id, "started_at": _iso(r.started_at), "finished_at": _iso(r.finished_at),
                   "as_of": _iso(r.as_of), "outcome": r.outcome, "seconds": None if r.seconds is None else round(r.seconds, 4),
-                  "experiments": r.experiments, "findings": r.findings} for r in report.runs],
+                  "experiments": r.experiments, "findings": r.findings, "rows_returned": r.rows_returned,
+                  "rows_scanned": r.rows_scanned, "bytes_scanned": r.bytes_scanned} for r in report.runs],
     }
 
 

@@ -58,8 +58,15 @@ class PulledSource:
     """False for a backtest (``as_of`` before a stored watermark): nothing may be stored."""
 
 
-def render_source_sql(src: SourceConfig, wh: Warehouse) -> str:
-    return render("assignments.sql.j2", wh.dialect, **source_context(src, Quoter(wh.dialect)))
+def render_source_sql(src: SourceConfig, wh: Warehouse, *, incremental: bool = False, leak_hours: bool = False) -> str:
+    """The assignment query of one source.
+
+    ``incremental`` (``since`` after the window start) reads the older rows only
+    to drop units already assigned before ``since``; ``leak_hours`` adds the
+    ``leak_hour`` column (see the template's header).
+    """
+    return render("assignments.sql.j2", wh.dialect, incremental=incremental, leak_hours=leak_hours,
+                  **source_context(src, Quoter(wh.dialect)))
 
 
 def _naive(t: datetime) -> datetime:
@@ -87,7 +94,7 @@ def _tidy(raw: pd.DataFrame, segments: Sequence[str]) -> pd.DataFrame:
         segment = ["{}"] * len(raw)
     hours = pd.to_datetime(raw["hour"])
     hours = hours.dt.tz_localize("UTC") if hours.dt.tz is None else hours.dt.tz_convert("UTC")
-    return pd.DataFrame({
+    out = pd.DataFrame({
         "experiment": raw["experiment"].astype(str),
         "variant": raw["variant"].astype(object).where(raw["variant"].notna(), None),
         "hour": hours,
@@ -95,6 +102,10 @@ def _tidy(raw: pd.DataFrame, segments: Sequence[str]) -> pd.DataFrame:
         "units": pd.to_numeric(raw["units"]).fillna(0).astype("int64"),
         "leaked": pd.to_numeric(raw["leaked"]).fillna(0).astype("int64"),
     })
+    if "leak_hour" in raw.columns:  # a replay pull (render flag leak_hours)
+        leak = pd.to_datetime(raw["leak_hour"])
+        out["leak_hour"] = leak.dt.tz_localize("UTC") if leak.dt.tz is None else leak.dt.tz_convert("UTC")
+    return out
 
 
 def pull_sources(
@@ -128,7 +139,7 @@ def pull_sources(
             since = window_start
         if on_query:
             on_query(src.name)
-        sql = render_source_sql(src, wh)
+        sql = render_source_sql(src, wh, incremental=since > window_start)
         raw = wh.query(
             f"assignments[{src.name}]",
             sql,

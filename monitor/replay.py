@@ -1,12 +1,27 @@
-"""Replay: what expwatch would have said, run by run, over a past period.
+"""Replay: what expwatch would have said, step by step, over a past period.
 
-:func:`replay` runs :func:`monitor.cycle.run_cycle` at every step from ``start``
-to ``end`` against a temporary SQLite state store (nothing is read from or
-written to the configured store, and nothing is sent), stepping forward so each
-cycle reuses the counts the previous one pulled, exactly as a scheduled
-deployment would. From the ledger events it reports, per experiment, check and
-scope, when the alert would have opened, escalated and closed, and the
-detection delay against a known onset.
+Two ways to get there, both on a throw-away state (nothing is read from or
+written to the configured store, and nothing is sent):
+
+``fast`` (the default)
+    Each assignment source is pulled **once** for the whole period, with each
+    leaked unit's leak hour (``sql/assignments.sql.j2``, render flag
+    ``leak_hours``), so the hourly counts as they stood at any earlier hour are
+    read off that one pull. The allocation checks then run at every step on
+    those counts (:func:`monitor.checks.allocation_findings_from`, the same code
+    a cycle runs), and the metric checks (guardrails) run every
+    ``metrics_every`` with their own queries. The alert ledger is kept in
+    memory. What it reports is what a cycle with ``--full-refresh`` would have
+    said at each step, from the data as it is now.
+``cycles``
+    :func:`monitor.cycle.run_cycle` at every step, against a temporary SQLite
+    store, stepping forward so each cycle reuses the counts the previous one
+    pulled, exactly as a scheduled deployment would (lookback bound included).
+    Slow: every step is a whole cycle.
+
+From the ledger events it reports, per experiment, check and scope, when the
+alert would have opened, escalated and closed, and the detection delay against
+a known onset.
 """
 
 from __future__ import annotations
@@ -15,14 +30,16 @@ import logging
 import re
 import tempfile
 import time
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
 from typing import Any
 
-from monitor.errors import ConfigError
-from monitor.findings import SEVERITY_NAMES
+from monitor import ledger
+from monitor.errors import ConfigError, MonitorError
+from monitor.findings import SEVERITY_NAMES, Finding
+from monitor.ledger import AlertEvent
 
 __all__ = ["AlertTimeline", "MissedOnset", "ReplayReport", "parse_every", "render_replay_text", "replay", "replay_to_json"]
 
@@ -33,7 +50,7 @@ _UNITS = {"m": "minutes", "h": "hours", "d": "days"}
 MAX_STEPS = 20000
 
 
-def parse_every(text: str) -> timedelta:
+def parse_every(text: str, option: str = "--every") -> timedelta:
     """``"30m"``, ``"1h"``, ``"6h"``, ``"1d"`` -> a positive timedelta.
 
     Raises
@@ -43,7 +60,7 @@ def parse_every(text: str) -> timedelta:
     """
     m = _EVERY_RE.match(text or "")
     if not m or int(m.group(1)) == 0:
-        raise ConfigError(f"--every: {text!r} is not a step like 30m, 1h, 6h or 1d")
+        raise ConfigError(f"{option}: {text!r} is not a step like 30m, 1h, 6h or 1d")
     return timedelta(**{_UNITS[m.group(2)]: int(m.group(1))})
 
 
@@ -112,7 +129,9 @@ class ReplayReport:
         Ordered by opening time, then key.
     missed : tuple of MissedOnset
     skipped : tuple of (datetime, str)
-        Steps whose cycle failed, with the one-line reason (the replay goes on).
+        Steps whose cycle (or metric checks) failed, with the one-line reason (the replay goes on).
+    mode : str
+        ``fast`` or ``cycles``.
     """
 
     start: datetime
@@ -123,6 +142,7 @@ class ReplayReport:
     timelines: tuple[AlertTimeline, ...]
     missed: tuple[MissedOnset, ...]
     skipped: tuple[tuple[datetime, str], ...]
+    mode: str = "fast"
 
 
 def _onset_for(onsets: Mapping[Any, datetime], experiment: str, check: str) -> datetime | None:
@@ -139,27 +159,37 @@ def replay(
     every: timedelta = timedelta(hours=1),
     onsets: Mapping[Any, datetime] | None = None,
     allocation_only: bool = False,
+    mode: str = "fast",
+    metrics_every: timedelta = timedelta(days=1),
     on_step: Callable[[int, int, datetime], None] | None = None,
     clock: Callable[[], datetime] = lambda: datetime.now(timezone.utc),
 ) -> ReplayReport:
-    """Replay the monitor from ``start`` to ``end`` on a throw-away state store.
+    """Replay the monitor from ``start`` to ``end`` without touching the configured state store.
 
     Parameters
     ----------
     cfg : Config
-        The configuration; only its ``state.url`` is replaced.
+        The configuration (the replay never uses its ``state.url``).
     start, end : datetime
         Aware times; steps are ``start, start + every, ...`` up to and including ``end``.
     every : timedelta
-        Step between cycles (positive).
+        Step between evaluations (positive). ``mode="fast"`` needs ``start`` on a
+        whole hour and ``every`` a whole number of hours.
     onsets : mapping, optional
         Known problem onsets, keyed by experiment id or by ``(experiment, check)``;
         the more specific key wins.
     allocation_only : bool
         Drop the configured metrics (guardrails) so only the allocation checks
-        run: no metric queries, much faster.
+        run: no metric queries.
+    mode : {"fast", "cycles"}
+        See the module docstring.
+    metrics_every : timedelta
+        ``mode="fast"``: the metric checks run at the first step, then at every
+        step at least this long after the previous metric step, and at the last
+        step; in between, their last findings stand. A positive multiple of
+        ``every`` is the natural choice. ``mode="cycles"`` runs them every step.
     on_step : callable, optional
-        Called as ``on_step(i, n, as_of)`` before each cycle.
+        Called as ``on_step(i, n, as_of)`` before each step.
     clock : callable
         Now (aware UTC); ``end`` may not be after it.
 
@@ -171,19 +201,19 @@ def replay(
     ------
     ConfigError
         Naive times, ``end`` before ``start`` or in the future, a non-positive
-        step, or more than 20,000 steps.
+        step, more than 20,000 steps, an unknown mode, or (fast mode) steps that
+        are not whole hours.
+    WarehouseError
+        ``mode="fast"``: the one-time pull failed (nothing to replay).
 
     Notes
     -----
-    A step whose cycle fails (warehouse error) is listed in ``skipped`` and the
-    replay continues; the next cycle pulls the hours the failed one missed. The
-    first cycle pulls the whole experiment window, later ones only the hours after
-    the previous pull minus the lookback, as in production. Notifications are
-    never sent: :func:`monitor.cycle.run_cycle` is called with ``notify=False``.
+    ``mode="cycles"``: a step whose cycle fails (warehouse error) is listed in
+    ``skipped`` and the replay continues; the next cycle pulls the hours the
+    failed one missed. ``mode="fast"``: a failed metric step is listed in
+    ``skipped`` and the previous metric findings stand. Notifications are never
+    sent.
     """
-    from monitor.cycle import run_cycle
-    from monitor.errors import MonitorError
-
     if start.tzinfo is None or end.tzinfo is None:
         raise ConfigError("replay: --from and --to must carry a time zone")
     start, end = start.astimezone(timezone.utc), end.astimezone(timezone.utc)
@@ -193,43 +223,42 @@ def replay(
         raise ConfigError(f"replay: --to {end:%Y-%m-%dT%H:%MZ} is in the future")
     if every <= timedelta(0):
         raise ConfigError("replay: --every must be positive")
+    if mode not in ("fast", "cycles"):
+        raise ConfigError(f"replay: mode {mode!r} is not fast or cycles")
     n = int((end - start) // every) + 1
     if n > MAX_STEPS:
         raise ConfigError(f"replay: {n} steps is more than {MAX_STEPS}; use a larger --every")
+    if mode == "fast":
+        if start != start.replace(minute=0, second=0, microsecond=0) or every % timedelta(hours=1):
+            raise ConfigError("replay: the fast replay steps on whole hours: --from must be on the hour and "
+                              "--every a whole number of hours (or use --exact)")
+        if metrics_every <= timedelta(0):
+            raise ConfigError("replay: --metrics-every must be positive")
+    steps = [start + i * every for i in range(n)]
     onsets = {k: v.astimezone(timezone.utc) for k, v in (onsets or {}).items()}
+    if allocation_only and hasattr(cfg, "metrics"):
+        cfg = cfg.model_copy(update={"metrics": []})
     t0 = time.monotonic()
     open_: dict[str, dict[str, Any]] = {}
     done: list[dict[str, Any]] = []
     skipped: list[tuple[datetime, str]] = []
-    with tempfile.TemporaryDirectory(prefix="expwatch-replay-") as tmp:
-        url = f"sqlite:///{Path(tmp) / 'replay-state.sqlite'}"
-        update: dict[str, Any] = {"state": cfg.state.model_copy(update={"url": url})}
-        if allocation_only and hasattr(cfg, "metrics"):
-            update["metrics"] = []
-        rcfg = cfg.model_copy(update=update)
-        for i in range(n):
-            as_of = start + i * every
-            if on_step:
-                on_step(i, n, as_of)
-            try:
-                result = run_cycle(rcfg, as_of=as_of, wait_seconds=0.0, notify=False)
-            except MonitorError as exc:
-                skipped.append((as_of, str(exc)))
-                log.warning("replay step %s failed: %s", as_of.isoformat(), exc)
-                continue
-            for ev in result.events:
-                sev = SEVERITY_NAMES.get(ev.severity, str(ev.severity))
-                if ev.kind == "opened":
-                    open_[ev.key] = {"experiment": ev.experiment, "check": ev.check, "scope": ev.scope, "opened_at": as_of,
-                                     "severity_opened": sev, "escalations": [], "max": ev.severity, "summary": ev.summary}
-                elif ev.key in open_:
-                    a = open_[ev.key]
-                    if ev.kind == "escalated":
-                        a["escalations"].append((as_of, sev))
-                    a["max"] = max(a["max"], ev.severity)
-                    if ev.kind == "resolved":
-                        a["closed_at"] = as_of
-                        done.append(open_.pop(ev.key))
+    stream = (_fast_events(cfg, steps, metrics_every, skipped, on_step, with_metrics=not allocation_only)
+              if mode == "fast"
+              else _cycle_events(cfg, steps, skipped, on_step))
+    for as_of, _found, events in stream:
+        for ev in events:
+            sev = SEVERITY_NAMES.get(ev.severity, str(ev.severity))
+            if ev.kind == "opened":
+                open_[ev.key] = {"experiment": ev.experiment, "check": ev.check, "scope": ev.scope, "opened_at": as_of,
+                                 "severity_opened": sev, "escalations": [], "max": ev.severity, "summary": ev.summary}
+            elif ev.key in open_:
+                a = open_[ev.key]
+                if ev.kind == "escalated":
+                    a["escalations"].append((as_of, sev))
+                a["max"] = max(a["max"], ev.severity)
+                if ev.kind == "resolved":
+                    a["closed_at"] = as_of
+                    done.append(open_.pop(ev.key))
     timelines = []
     for a in done + list(open_.values()):
         onset = _onset_for(onsets, a["experiment"], a["check"])
@@ -243,12 +272,98 @@ def replay(
         exp, check = (key if isinstance(key, tuple) else (key, None))
         if not any(t.experiment == exp and (check is None or t.check == check) for t in timelines):
             missed.append(MissedOnset(exp, check, onset))
-    return ReplayReport(start, start + (n - 1) * every, every, n, time.monotonic() - t0, tuple(timelines),
-                        tuple(missed), tuple(skipped))
+    return ReplayReport(start, steps[-1], every, n, time.monotonic() - t0, tuple(timelines),
+                        tuple(missed), tuple(skipped), mode)
+
+
+def _cycle_events(cfg: Any, steps: list[datetime], skipped: list[tuple[datetime, str]],
+                  on_step: Callable[[int, int, datetime], None] | None) -> Iterator[tuple[datetime, list[Finding], list[AlertEvent]]]:
+    """One whole cycle per step against a temporary SQLite store."""
+    from monitor.cycle import run_cycle
+
+    with tempfile.TemporaryDirectory(prefix="expwatch-replay-") as tmp:
+        url = f"sqlite:///{Path(tmp) / 'replay-state.sqlite'}"
+        rcfg = cfg.model_copy(update={"state": cfg.state.model_copy(update={"url": url})})
+        for i, as_of in enumerate(steps):
+            if on_step:
+                on_step(i, len(steps), as_of)
+            try:
+                result = run_cycle(rcfg, as_of=as_of, wait_seconds=0.0, notify=False)
+            except MonitorError as exc:
+                skipped.append((as_of, str(exc)))
+                log.warning("replay step %s failed: %s", as_of.isoformat(), exc)
+                continue
+            yield as_of, result.findings, result.events
+
+
+def _fast_events(cfg: Any, steps: list[datetime], metrics_every: timedelta, skipped: list[tuple[datetime, str]],
+                 on_step: Callable[[int, int, datetime], None] | None, *, with_metrics: bool = True) -> Iterator[tuple[datetime, list[Finding], list[AlertEvent]]]:
+    """Pull once, then evaluate every step on the counts as they stood then (see the module docstring)."""
+    from monitor.checks import HourlyCounts, allocation_findings_from, design_findings, hour_index
+    from monitor.cycle import load_registry, metric_findings
+    from monitor.pull import _naive, _tidy, render_source_sql
+    from monitor.warehouse import open_warehouse
+
+    wh = open_warehouse(cfg.warehouse)
+    try:
+        exps, problems = load_registry(cfg, wh)
+        live_sets = [[e for e in exps if e.live_at(t, cfg.registry.live_status)] for t in steps]
+        ever = {e.id: e for live in live_sets for e in live}
+        tables: dict[str, dict[str, HourlyCounts]] = {src.name: {} for src in cfg.sources}
+        if ever:
+            window_start = min(e.start for e in ever.values()).replace(minute=0, second=0, microsecond=0)
+            params = {"window_start": _naive(window_start), "as_of": _naive(steps[-1]),
+                      "since": _naive(window_start), "experiment_ids": list(ever)}
+            for src in cfg.sources:
+                raw = wh.query(f"assignments[{src.name}]", render_source_sql(src, wh, leak_hours=True), params,
+                               expanding=("experiment_ids",))
+                tables[src.name] = HourlyCounts.tables(_tidy(raw, src.segments or []))
+        design = design_findings(problems)
+        open_alerts: dict[str, dict[str, Any]] = {}
+        metric_found: list[Finding] = []
+        last_metric: datetime | None = None
+        next_id = 1
+        for i, as_of in enumerate(steps):
+            if on_step:
+                on_step(i, len(steps), as_of)
+            live = live_sets[i]
+            h = hour_index(as_of)
+            now = {name: {e.id: t[e.id].before(h) for e in live if e.id in t} for name, t in tables.items()}
+            found = design + allocation_findings_from(live, now, cfg.sources[0].name, as_of, cfg.checks)
+            if with_metrics and (last_metric is None or as_of - last_metric >= metrics_every or i == len(steps) - 1):
+                try:
+                    metric_found = metric_findings(cfg, wh, live, as_of)[0]
+                    last_metric = as_of
+                except MonitorError as exc:
+                    skipped.append((as_of, f"metric checks: {exc}"))
+                    log.warning("replay metric step %s failed: %s", as_of.isoformat(), exc)
+            ids = {e.id for e in live}
+            found = found + [f for f in metric_found if f.experiment in ids]
+            events = ledger.plan(list(open_alerts.values()), found, [e.id for e in live] + [p.experiment for p in problems])
+            for ev in events:
+                if ev.kind == "opened":
+                    open_alerts[ev.key] = {"key": ev.key, "id": next_id, "experiment": ev.experiment,
+                                           "check_name": ev.check, "scope": ev.scope, "severity": ev.severity,
+                                           "max_severity": ev.severity}
+                    next_id += 1
+                elif ev.kind == "resolved":
+                    open_alerts.pop(ev.key, None)
+                else:
+                    a = open_alerts[ev.key]
+                    a["severity"] = ev.severity
+                    a["max_severity"] = max(a["max_severity"], ev.severity)
+            yield as_of, found, events
+    finally:
+        wh.dispose()
 
 
 def _fmt(t: datetime | None) -> str:
     return "-" if t is None else f"{t:%Y-%m-%d %H:%M}"
+
+
+def _severity_counts(report: ReplayReport) -> str:
+    n = {name: sum(t.max_severity == name for t in report.timelines) for name in ("warn", "alert", "critical")}
+    return ", ".join(f"{v} reached {k}" for k, v in n.items())
 
 
 def _every_text(td: timedelta) -> str:
@@ -262,7 +377,8 @@ def _every_text(td: timedelta) -> str:
 def render_replay_text(report: ReplayReport) -> str:
     """The replay as a plain-text table (times UTC)."""
     lines = [f"replay {_fmt(report.start)} .. {_fmt(report.end)} UTC every {_every_text(report.every)}: "
-             f"{report.steps} cycles in {report.seconds:.0f}s, {len(report.timelines)} alerts"]
+             f"{report.steps} {'steps' if report.mode == 'fast' else 'cycles'} in {report.seconds:.0f}s, "
+             f"{len(report.timelines)} alerts ({_severity_counts(report)})"]
     head = f"{'experiment':<26} {'check':<10} {'scope':<10} {'opened':<16} {'escalated':<26} {'closed':<16} {'max':<8} delay"
     lines += ["", head]
     for t in report.timelines:
@@ -283,7 +399,7 @@ def replay_to_json(report: ReplayReport) -> dict[str, Any]:
     return {
         "format": "expwatch.replay/1",
         "start": iso(report.start), "end": iso(report.end), "every_seconds": int(report.every.total_seconds()),
-        "steps": report.steps, "seconds": round(report.seconds, 3),
+        "mode": report.mode, "steps": report.steps, "seconds": round(report.seconds, 3),
         "alerts": [{"experiment": t.experiment, "check": t.check, "scope": t.scope, "opened_at": iso(t.opened_at),
                     "severity_opened": t.severity_opened,
                     "escalations": [{"at": iso(a), "severity": s} for a, s in t.escalations],

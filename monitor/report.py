@@ -91,6 +91,7 @@ def print_text(result: CycleResult, console: Console) -> None:
     for c in ("leakage", "unknown_variant", "freshness"):
         table.add_column(c.replace("unknown_variant", "variants"), overflow="fold")
     table.add_column("guardrails", overflow="fold")
+    table.add_column("effects", overflow="fold")  # novelty, spillover, collision: the worst of them
     entries = {e["experiment"]: e for e in _experiment_entries(result)}
     for e in result.experiments:
         checks = by_exp.get(e.id, {})
@@ -103,9 +104,10 @@ def print_text(result: CycleResult, console: Console) -> None:
         for c in ("leakage", "unknown_variant", "freshness"):
             fs = checks.get(c, [])
             other.append(_cell(fs[0].status) if fs else Text("-"))
-        guards = checks.get("guardrail", [])
-        worst = max((f.status for f in guards), key=lambda st: _RANK[st], default=None)
-        other.append(_cell(worst) if worst else Text("-"))
+        for group in (("guardrail",), ("novelty", "spillover", "collision")):
+            fs = [f for c in group for f in checks.get(c, [])]
+            worst = max((f.status for f in fs), key=lambda st: _RANK[st], default=None)
+            other.append(_cell(worst) if worst else Text("-"))
         table.add_row(e.id, str(entry["phase"] or "-"), f"{sum(entry['units'].values()):,}", *srm_cells, *other)
     console.print(table)
     problems = [f for f in result.findings if f.status != "ok"]

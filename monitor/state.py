@@ -178,7 +178,26 @@ def _migration_3(conn: Connection) -> None:
     migration_outbox(conn)
 
 
-MIGRATIONS: list[Callable[[Connection], None]] = [_migration_1, _migration_2, _migration_3]
+query_costs = sa.Table(
+    "expwatch_query_costs", metadata,
+    sa.Column("id", sa.Integer, primary_key=True, autoincrement=True),
+    sa.Column("run_id", sa.String(36), nullable=False, index=True),
+    sa.Column("position", sa.Integer, nullable=False),
+    sa.Column("query", sa.String(256), nullable=False),
+    sa.Column("seconds", sa.Float, nullable=False),
+    sa.Column("rows_returned", sa.BigInteger, nullable=False),
+    sa.Column("rows_scanned", sa.BigInteger),     # NULL: the engine did not report it
+    sa.Column("bytes_scanned", sa.BigInteger),    # NULL: the engine did not report it
+)
+
+
+def _migration_4(conn: Connection) -> None:
+    """Per-run, per-query scan cost: rows returned, and rows/bytes scanned where the
+    engine reports them (monitor/warehouse.py ``QueryStats``)."""
+    metadata.create_all(conn, tables=[query_costs])
+
+
+MIGRATIONS: list[Callable[[Connection], None]] = [_migration_1, _migration_2, _migration_3, _migration_4]
 SCHEMA_VERSION = len(MIGRATIONS)
 
 
@@ -372,6 +391,22 @@ class StateStore:
                 detail=json.dumps(detail, sort_keys=True),
             )
         )
+
+    @staticmethod
+    def record_query_costs(conn: Connection, run_id: str, stats: Sequence[Any]) -> None:
+        """One row per warehouse query of the run (``QueryStats``), in query order."""
+        rows = [{"run_id": run_id, "position": i, "query": str(q.name)[:256], "seconds": float(q.seconds),
+                 "rows_returned": int(q.rows), "rows_scanned": getattr(q, "rows_scanned", None),
+                 "bytes_scanned": getattr(q, "bytes_scanned", None)} for i, q in enumerate(stats)]
+        if rows:
+            conn.execute(sa.insert(query_costs), rows)
+
+    def query_costs(self, run_id: str) -> list[dict[str, Any]]:
+        """The recorded queries of one run, in query order."""
+        with self.engine.connect() as c:
+            rows = c.execute(sa.select(query_costs).where(query_costs.c.run_id == run_id)
+                             .order_by(query_costs.c.position)).mappings().all()
+        return [dict(r) for r in rows]
 
     @staticmethod
     def record_metric_snapshots(conn: Connection, run_id: str, as_of: datetime, rows: Sequence[Any]) -> None:

@@ -20,12 +20,13 @@ from pathlib import Path
 from typing import Any
 
 import jinja2
-from sqlalchemy.engine import Dialect
+from sqlalchemy.engine import Dialect, default
+from sqlalchemy.sql import compiler
 
 from monitor.config import RegistryConfig, SourceConfig
 from monitor.errors import ConfigError
 
-__all__ = ["Quoter", "render", "template_names", "source_context", "registry_context"]
+__all__ = ["OFFLINE_DIALECTS", "Quoter", "offline_dialect", "registry_context", "render", "source_context", "template_names"]
 
 
 def _template_dir() -> Path:
@@ -65,6 +66,46 @@ def render(name: str, dialect: Dialect | str, **context: Any) -> str:
     except jinja2.TemplateError as exc:
         raise ConfigError(f"SQL template {name}: {exc}") from exc
     return "\n".join(line.rstrip() for line in sql.strip().splitlines()) + "\n"
+
+
+#: Engines whose identifier quoting is known here without their SQLAlchemy dialect
+#: package: the Spark backend (no SQLAlchemy dialect) and the warehouses the
+#: dialect tests render for. Names are the ones those packages register.
+OFFLINE_DIALECTS: dict[str, str] = {
+    "spark": "`", "databricks": "`", "bigquery": "`",
+    "snowflake": '"', "trino": '"', "redshift": '"',
+}
+
+
+class _BackslashPreparer(compiler.IdentifierPreparer):
+    """BigQuery: a backtick inside a quoted identifier is escaped with a backslash."""
+
+    def _escape_identifier(self, value: str) -> str:
+        return value.replace("\\", "\\\\").replace("`", "\\`")
+
+
+def offline_dialect(name: str) -> Dialect:
+    """A SQLAlchemy dialect that only quotes identifiers like engine ``name``
+    (backticks for Spark, Databricks and BigQuery; double quotes for Snowflake,
+    Trino and Redshift), for rendering templates without the engine's driver.
+
+    Raises
+    ------
+    ConfigError
+        ``name`` is not one of :data:`OFFLINE_DIALECTS`.
+    """
+    try:
+        quote = OFFLINE_DIALECTS[name]
+    except KeyError:
+        raise ConfigError(f"no offline SQL dialect {name!r} (known: {', '.join(sorted(OFFLINE_DIALECTS))})") from None
+    base = _BackslashPreparer if name == "bigquery" else compiler.IdentifierPreparer
+
+    class _Preparer(base):  # type: ignore[valid-type,misc]
+        def __init__(self, dialect: Dialect, **kw: Any) -> None:
+            super().__init__(dialect, initial_quote=quote, escape_quote=quote)
+
+    dialect_cls = type(f"_{name.title()}Dialect", (default.DefaultDialect,), {"name": name, "preparer": _Preparer})
+    return dialect_cls()
 
 
 @dataclass(frozen=True)

@@ -2,18 +2,35 @@
 
 expwatch never writes to the warehouse. Connections are opened read-only where
 the engine allows it: DuckDB files with ``read_only=True``, PostgreSQL sessions
-with ``default_transaction_read_only = on``. Sessions run in UTC so hour
+with ``default_transaction_read_only = on`` (and ``enable_nestloop = off``, see
+``_install_session_settings``). Sessions run in UTC so hour
 boundaries are the same on every engine.
 
 Every query goes through :meth:`Warehouse.query`, which names the template in
 its error message, records duration and row count, and calls an optional
 ``tracer(name, sql, params)`` so tests and ``--verbose`` can see what ran.
+
+Scan cost: each :class:`QueryStats` also holds what the engine itself reported
+about the rows (and bytes) its scans read, where that is cheap to get: DuckDB's
+profiler (``enable_profiling = 'no_output'``; ``total_rows_scanned`` and
+``total_bytes_read``) and Spark's scan-node metrics (rows output by the file
+scans, size of the files they opened). Other engines report nothing cheaply
+(PostgreSQL would need ``EXPLAIN (ANALYZE, BUFFERS)``, a second execution), so
+there the fields stay None and only the rows returned are known.
+
+:class:`SparkWarehouse` runs the same templates on Apache Spark SQL through a
+``SparkSession`` (local mode or a cluster); :func:`open_warehouse` picks the
+backend from the ``warehouse`` config section.
 """
 
 from __future__ import annotations
 
+import importlib.util
+import json
 import logging
+import re
 import time
+import warnings
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Any
@@ -25,7 +42,7 @@ from sqlalchemy.exc import ArgumentError, DBAPIError, NoSuchModuleError, SQLAlch
 
 from monitor.errors import ConfigError, WarehouseError
 
-__all__ = ["QueryStats", "Warehouse", "safe_url"]
+__all__ = ["QueryStats", "SparkWarehouse", "Warehouse", "open_warehouse", "safe_url"]
 
 log = logging.getLogger("monitor")
 
@@ -48,9 +65,14 @@ def _first_line(exc: BaseException) -> str:
 
 @dataclass(frozen=True)
 class QueryStats:
+    """One query: wall time, rows returned and, where the engine reported them,
+    rows and bytes its scans read (None: not reported)."""
+
     name: str
     seconds: float
     rows: int
+    rows_scanned: int | None = None
+    bytes_scanned: int | None = None
 
 
 class Warehouse:
@@ -93,6 +115,11 @@ class Warehouse:
     def dialect(self) -> sa.Dialect:
         return self.engine.dialect
 
+    @property
+    def label(self) -> str:
+        """Where the queries run, for messages (password masked)."""
+        return safe_url(self.url)
+
     def _install_session_settings(self, backend: str, timeout_seconds: float) -> None:
         @sa.event.listens_for(self.engine, "connect")
         def _on_connect(dbapi_conn: Any, _record: Any) -> None:
@@ -102,12 +129,21 @@ class Warehouse:
                     cur.execute("SET default_transaction_read_only = on")
                     cur.execute("SET TIME ZONE 'UTC'")
                     cur.execute(f"SET statement_timeout = {int(timeout_seconds * 1000)}")
+                    # Every expwatch query is a scan with GROUP BYs and equi-joins between CTEs. The
+                    # planner's row estimates for CTEs joined to bind-parameter windows come out at a
+                    # handful of rows, and the nested loops it then picks turned the novelty query on
+                    # the demo from 13 s into more than 10 minutes; hash and merge joins stay available.
+                    cur.execute("SET enable_nestloop = off")
                     dbapi_conn.commit()
                 elif backend == "duckdb":
                     try:
                         cur.execute("SET TimeZone = 'UTC'")
                     except Exception:  # the ICU extension may be absent; naive TIMESTAMPs need no zone
                         log.debug("duckdb: could not set TimeZone (no ICU extension)")
+                    try:  # the profiler's counters give rows/bytes scanned per query, nothing printed
+                        cur.execute("SET enable_profiling = 'no_output'")
+                    except Exception:
+                        log.debug("duckdb: profiling not available; rows scanned will not be reported")
             finally:
                 cur.close()
 
@@ -124,6 +160,7 @@ class Warehouse:
                 result = conn.execute(stmt, dict(params))
                 cols = list(result.keys())
                 frame = self._fetch_frame(result, cols)
+                scanned, read_bytes = self._scan_counters(result)
         except DBAPIError as exc:
             if exc.connection_invalidated or isinstance(exc, sa.exc.OperationalError) and "connect" in str(exc).lower():
                 raise WarehouseError(f"warehouse {safe_url(self.url)} is unreachable: {_first_line(exc)}") from exc
@@ -133,7 +170,7 @@ class Warehouse:
         except Exception as exc:  # driver errors that are not DBAPI errors (e.g. duckdb.IOException)
             raise WarehouseError(f"warehouse {safe_url(self.url)}: query {name}: {_first_line(exc)}") from exc
         seconds = time.perf_counter() - t0
-        self.stats.append(QueryStats(name, seconds, len(frame)))
+        self.stats.append(QueryStats(name, seconds, len(frame), scanned, read_bytes))
         log.info("query %s: %d rows in %.2fs", name, len(frame), seconds)
         return frame
 
@@ -148,6 +185,17 @@ class Warehouse:
         rows = cursor.fetchall() if cursor is not None else []
         return pd.DataFrame.from_records(rows, columns=cols)
 
+    def _scan_counters(self, result: sa.CursorResult[Any]) -> tuple[int | None, int | None]:
+        """Rows and bytes the engine says the query's scans read (DuckDB's profiler)."""
+        cursor = result.cursor
+        if self.dialect.name != "duckdb" or cursor is None:
+            return None, None
+        try:
+            info = json.loads(cursor.get_profiling_information(format="json"))
+        except Exception:  # profiling disabled or an engine version without it
+            return None, None
+        return _duckdb_counters(info)
+
     def probe(self, name: str, sql: str, params: Mapping[str, Any], *, expanding: tuple[str, ...] = ()) -> list[str]:
         """Compile ``sql`` against the warehouse without reading data (``LIMIT 0``);
         returns the output column names."""
@@ -156,3 +204,257 @@ class Warehouse:
 
     def dispose(self) -> None:
         self.engine.dispose()
+
+
+def _duckdb_counters(info: Mapping[str, Any]) -> tuple[int | None, int | None]:
+    """``total_rows_scanned`` and ``io.total_bytes_read`` from DuckDB's JSON profile
+    (bytes read from storage; 0 when everything came from its buffer or memory)."""
+    query = info.get("query") or {}
+    rows = query.get("total_rows_scanned", info.get("cumulative_rows_scanned"))
+    nbytes = (info.get("io") or {}).get("total_bytes_read")
+    return (int(rows) if rows is not None else None, int(nbytes) if nbytes is not None else None)
+
+
+# -- Apache Spark SQL -------------------------------------------------------------------
+
+#: Spark scan nodes' metric keys: rows a scan handed on, size of the files it opened.
+_SPARK_ROWS_METRIC = "numOutputRows"
+_SPARK_BYTES_METRIC = "filesSize"
+
+
+def _spark_markers(sql: str, params: Mapping[str, Any], expanding: tuple[str, ...]) -> tuple[str, dict[str, Any]]:
+    """Named ``:name`` markers and their values for ``SparkSession.sql(args=...)``.
+
+    An expanding list ``:ids`` becomes ``(:ids_0, :ids_1, ...)`` (``(NULL)`` when
+    empty, which matches nothing); a naive datetime is taken as UTC, as on every
+    other engine (Spark would read it in the Python process's local zone)."""
+    args: dict[str, Any] = {}
+    for key, value in params.items():
+        if key in expanding:
+            values = list(value)
+            names = [f"{key}_{i}" for i in range(len(values))]
+            marker = "(" + ", ".join(f":{n}" for n in names) + ")" if names else "(NULL)"
+            sql = re.sub(rf"(?<![\w:]):{re.escape(key)}\b", lambda _m, m=marker: m, sql)
+            args.update({n: _spark_value(v) for n, v in zip(names, values)})
+        else:
+            args[key] = _spark_value(value)
+    return sql, args
+
+
+def _spark_value(v: Any) -> Any:
+    from datetime import datetime, timezone
+
+    if isinstance(v, datetime) and v.tzinfo is None:
+        return v.replace(tzinfo=timezone.utc)
+    return v
+
+
+def _spark_scan_counters(df: Any) -> tuple[int | None, int | None]:
+    """Sum the scan nodes' metrics of the executed physical plan of ``df``.
+
+    Rows: ``numOutputRows`` of every leaf scan (rows read after partition and
+    row-group pruning, before the remaining filters). Bytes: ``filesSize`` (the
+    size of the files a file scan opened; column pruning reads less), None when
+    no scan reports it. Adaptive plans are followed into their final stages; a
+    reused exchange is not counted twice. Spark Connect sessions expose no plan:
+    (None, None)."""
+    try:
+        stack = [df._jdf.queryExecution().executedPlan()]
+        rows = 0
+        nbytes: int | None = None
+        scans = 0
+        while stack:
+            node = stack.pop()
+            kind = node.getClass().getSimpleName()
+            if kind == "AdaptiveSparkPlanExec":
+                stack.append(node.executedPlan())
+                continue
+            if kind.endswith("QueryStageExec"):
+                stack.append(node.plan())
+                continue
+            if kind.startswith("Reused"):
+                continue
+            children = node.children()
+            if children.isEmpty() and "Scan" in kind:
+                metrics = node.metrics()
+                scans += 1
+                if metrics.contains(_SPARK_ROWS_METRIC):
+                    rows += int(metrics.apply(_SPARK_ROWS_METRIC).value())
+                if metrics.contains(_SPARK_BYTES_METRIC):
+                    nbytes = (nbytes or 0) + int(metrics.apply(_SPARK_BYTES_METRIC).value())
+            it = children.iterator()
+            while it.hasNext():
+                stack.append(it.next())
+    except Exception:  # Spark Connect, or a plan shape we do not know: nothing reported
+        return None, None
+    return (rows if scans else None), nbytes
+
+
+def _import_pyspark() -> Any:
+    try:
+        with warnings.catch_warnings():
+            # pyspark warns on import about pandas versions it has not certified; the
+            # monitor only hands it Python values and reads rows back
+            warnings.simplefilter("ignore", FutureWarning)
+            from pyspark.sql import SparkSession
+    except ImportError as exc:
+        raise ConfigError("warehouse.spark: pyspark is not installed (pip install 'expwatch[spark]')") from exc
+    return SparkSession
+
+
+class SparkWarehouse(Warehouse):
+    """The same read-only query interface on Apache Spark SQL.
+
+    Parameters
+    ----------
+    settings : monitor.config.SparkConfig
+        ``master`` (``local[N]``, ``spark://host:port``, ``yarn``... or None for the
+        session ``spark-submit`` set up), ``app_name``, extra ``conf``, ``parquet``
+        (view name -> path: each registered as a temporary view of the session) and
+        ``database`` (made current with ``USE``).
+    tracer : callable, optional
+        As for :class:`Warehouse`.
+    timeout_seconds : float
+        A query's Spark jobs are cancelled (``cancelJobGroup``) after this long.
+
+    Notes
+    -----
+    An existing active session is reused (``getOrCreate``), so ``master`` and the
+    static ``conf`` only apply when this process has none yet. The session time
+    zone is set to UTC. Nothing is written: the monitor issues SELECT statements
+    only and registers temporary views, which live in the session alone; grant the
+    Spark principal read access only. Values reach Spark as named parameters
+    (``spark.sql(sql, args=...)``), never as text.
+    """
+
+    def __init__(self, settings: Any, *, tracer: Tracer | None = None, timeout_seconds: float = 600.0) -> None:
+        session_cls = _import_pyspark()
+        self.tracer = tracer
+        self.stats = []
+        self.timeout_seconds = timeout_seconds
+        self.url = f"spark {settings.master or '(session from spark-submit)'}"
+        self._views: list[str] = []
+        builder = session_cls.builder.appName(settings.app_name)
+        if settings.master:
+            builder = builder.master(settings.master)
+        for key, value in (settings.conf or {}).items():
+            builder = builder.config(key, str(value).lower() if isinstance(value, bool) else str(value))
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", FutureWarning)
+                self.spark = builder.getOrCreate()
+            self.spark.conf.set("spark.sql.session.timeZone", "UTC")
+        except Exception as exc:
+            raise WarehouseError(
+                f"warehouse.spark: could not start a Spark session (master {settings.master!r}; "
+                f"Java 17+ must be installed): {_first_line(exc)}") from exc
+        # rows come back through Arrow when pyarrow is installed (the 'spark' extra), else row by row
+        self._arrow = importlib.util.find_spec("pyarrow") is not None
+        if self._arrow:
+            self.spark.conf.set("spark.sql.execution.arrow.pyspark.enabled", "true")
+            self.spark.conf.set("spark.sql.execution.arrow.pyspark.fallback.enabled", "false")
+        from monitor.templates import offline_dialect
+
+        self._dialect = offline_dialect("spark")
+        q = self._dialect.identifier_preparer
+        if settings.database:
+            name = ".".join(q.quote_identifier(p) for p in settings.database.split("."))
+            try:
+                self.spark.sql(f"USE {name}")
+            except Exception as exc:
+                raise ConfigError(f"warehouse.spark.database: {settings.database}: {_first_line(exc)}") from exc
+        for view, path in (settings.parquet or {}).items():
+            try:
+                self.spark.read.parquet(str(path)).createOrReplaceTempView(view)
+            except Exception as exc:
+                raise ConfigError(f"warehouse.spark.parquet.{view}: {path}: {_first_line(exc)}") from exc
+            self._views.append(view)
+
+    @property
+    def dialect(self) -> sa.Dialect:
+        return self._dialect
+
+    @property
+    def label(self) -> str:
+        return self.url
+
+    def _context(self) -> Any:
+        try:
+            return self.spark.sparkContext  # absent on Spark Connect sessions
+        except Exception:
+            return None
+
+    def query(self, name: str, sql: str, params: Mapping[str, Any], *, expanding: tuple[str, ...] = ()) -> pd.DataFrame:
+        """Run one query on Spark and return its rows as a DataFrame; TIMESTAMP
+        columns come back as naive UTC (cast to TIMESTAMP_NTZ in the UTC session)."""
+        import threading
+        import uuid
+
+        from pyspark.sql import functions as F
+        from pyspark.sql.types import TimestampType
+
+        text, args = _spark_markers(sql, params, expanding)
+        if self.tracer:
+            self.tracer(name, sql, params)
+        sc = self._context()
+        timed_out = threading.Event()
+        timer = None
+        if sc is not None:
+            group = f"expwatch-{uuid.uuid4().hex}"
+            sc.setJobGroup(group, f"expwatch query {name}", interruptOnCancel=True)
+
+            def _cancel() -> None:
+                timed_out.set()
+                sc.cancelJobGroup(group)
+
+            timer = threading.Timer(self.timeout_seconds, _cancel)
+            timer.daemon = True
+            timer.start()
+        t0 = time.perf_counter()
+        try:
+            df = self.spark.sql(text, args=args)
+            cols = df.columns
+            out = df.select([F.col("`" + c.replace("`", "``") + "`").cast("timestamp_ntz").alias(c)
+                             if isinstance(f.dataType, TimestampType) else F.col("`" + c.replace("`", "``") + "`")
+                             for c, f in zip(cols, df.schema.fields)])
+            if self._arrow:
+                with warnings.catch_warnings():
+                    # pyspark's own conversion code trips pandas 3's notices (its version check, the
+                    # deprecated copy= keyword); they concern pyspark, not the rows handed back
+                    warnings.filterwarnings("ignore", message="PySpark does not yet fully support pandas",
+                                            category=FutureWarning)
+                    warnings.filterwarnings("ignore", message="The copy keyword is deprecated")
+                    frame = out.toPandas()
+            else:
+                frame = pd.DataFrame.from_records([tuple(r) for r in out.collect()], columns=cols)
+        except Exception as exc:
+            if timed_out.is_set():
+                raise WarehouseError(f"query {name} on spark: cancelled after {self.timeout_seconds:g}s "
+                                     "(warehouse.query_timeout_seconds)") from exc
+            raise WarehouseError(f"query {name} failed on spark: {_first_line(exc)}") from exc
+        finally:
+            if timer is not None:
+                timer.cancel()
+        seconds = time.perf_counter() - t0
+        scanned, nbytes = _spark_scan_counters(out)
+        self.stats.append(QueryStats(name, seconds, len(frame), scanned, nbytes))
+        log.info("query %s: %d rows in %.2fs", name, len(frame), seconds)
+        return frame
+
+    def dispose(self) -> None:
+        """Drop the temporary views this warehouse registered; the session stays
+        up for the next cycle of a long-running process."""
+        for view in self._views:
+            try:
+                self.spark.catalog.dropTempView(view)
+            except Exception:
+                log.debug("spark: could not drop temporary view %s", view)
+        self._views = []
+
+
+def open_warehouse(settings: Any, *, tracer: Tracer | None = None) -> Warehouse:
+    """The warehouse a ``warehouse`` config section describes: Spark when it has a
+    ``spark`` block, else a SQLAlchemy engine for its ``url``."""
+    if getattr(settings, "spark", None) is not None:
+        return SparkWarehouse(settings.spark, tracer=tracer, timeout_seconds=settings.query_timeout_seconds)
+    return Warehouse(settings.url, tracer=tracer, timeout_seconds=settings.query_timeout_seconds)

@@ -11,14 +11,39 @@ import pytest
 ROOT = Path(__file__).resolve().parent.parent
 
 
+def _bench(*args: str) -> list[str]:
+    r = subprocess.run([sys.executable, "-m", "tests.bench.run", "--size", "XS", "--repeat", "1", *args],
+                       check=False, capture_output=True, text=True, cwd=ROOT, timeout=600)
+    assert r.returncode == 0, r.stderr
+    return r.stdout.splitlines()
+
+
+def _figures(lines: list[str]) -> dict[str, tuple[float, float]]:
+    out = {}
+    for line in lines:
+        parts = line.split()
+        if len(parts) == 3 and parts[1].replace(".", "").isdigit():
+            out[parts[0]] = (float(parts[1]), float(parts[2]))
+    return out
+
+
 @pytest.mark.slow
 def test_benchmark_script_prints_its_table(tmp_path):
-    r = subprocess.run([sys.executable, "-m", "tests.bench.run", "--size", "XS", "--repeat", "1",
-                        "--kinds", "cold,warm,floor,baseline", "--dir", str(tmp_path)],
-                       capture_output=True, text=True, cwd=ROOT, timeout=600)
-    assert r.returncode == 0, r.stderr
-    lines = r.stdout.splitlines()
+    lines = _bench("--kinds", "cold,warm,floor,stats,stats-looks,baseline", "--stats-experiments", "50",
+                   "--dir", str(tmp_path))
     assert lines[0].startswith("size XS: 50,000 assignment rows")
-    for kind in ("cold", "warm", "floor", "baseline"):
-        assert any(line.startswith(kind) for line in lines)
+    figures = _figures(lines)
+    assert set(figures) == {"cold", "warm", "floor", "stats", "stats-looks", "baseline"}
+    assert all(sec > 0 and rss > 0 for sec, rss in figures.values())
+    assert any(line.startswith("queries of the first cold run (s): registry") for line in lines)
+    assert lines[-1].startswith("ratios: cold/floor")
+    assert "n/a" not in lines[-1]
+
+
+@pytest.mark.postgres
+@pytest.mark.slow
+def test_benchmark_script_runs_against_postgres(tmp_path, pg_url):
+    lines = _bench("--engine", "postgres", "--pg-url", pg_url, "--kinds", "cold,floor", "--dir", str(tmp_path))
+    assert "engine postgres" in lines[0] and "loaded into PostgreSQL with COPY" in lines[0]
+    assert set(_figures(lines)) == {"cold", "floor"}
     assert lines[-1].startswith("ratios: cold/floor")

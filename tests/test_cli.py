@@ -60,7 +60,7 @@ def test_json_output_matches_the_readme(demo, tmp_path, capsys):
     assert all(set(f) == finding_keys for f in doc["findings"])
     assert {f["status"] for f in doc["findings"]} <= {"ok", "warn", "alert"}
     assert {f["check"] for f in doc["findings"]} <= {"srm", "leakage", "unknown_variant", "freshness", "design",
-                                                    "guardrail", "metric"}
+                                                    "guardrail", "metric", "novelty", "spillover", "collision"}
     assert {"guardrail", "metric"} <= {f["check"] for f in doc["findings"]}
     assert doc["as_of"] == "2026-11-30T09:00:00Z"
     assert "NaN" not in json.dumps(doc) and "Infinity" not in json.dumps(doc)
@@ -99,3 +99,35 @@ def test_demo_command_prints_repeat_command(tmp_path):
     assert "offline-download-prompt" in r.stdout
     again = _cli("run", "--config", str(tmp_path / "d" / "expwatch.yaml"), "--as-of", AS_OF, "--format", "json")
     assert again.returncode == 0 and json.loads(again.stdout)["events"] == []  # rerun of the same hour: no new events
+
+
+def _own_store_config(demo, tmp_path: Path) -> Path:
+    text = Path(demo["config"]).read_text(encoding="utf-8")
+    wh = (Path(demo["dir"]) / "warehouse.duckdb").as_posix()
+    text = text.replace('url: "duckdb:///warehouse.duckdb"', f'url: "duckdb:///{wh}"')
+    path = tmp_path / "expwatch.yaml"
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
+def test_quiet_prints_only_new_alert_events(demo, tmp_path, capsys):
+    """--quiet is for cron: silence unless an alert opened, escalated or resolved."""
+    from monitor.config import load_config
+    from monitor.state import StateStore
+
+    config = _own_store_config(demo, tmp_path)
+    assert main(["run", "--config", str(config), "--as-of", AS_OF, "--quiet"]) == 0
+    out, err = capsys.readouterr()
+    lines = out.splitlines()
+    assert lines and all(line.startswith(("opened ", "escalated ", "resolved ")) for line in lines), out
+    assert any(line.startswith("opened alert: quick-borrow-button · srm · filtered: ") for line in lines), out
+    assert "┃" not in out and err == ""
+    # the same hour again: nothing new, so nothing at all
+    assert main(["run", "--config", str(config), "--as-of", AS_OF, "--quiet"]) == 0
+    assert capsys.readouterr() == ("", "")
+    # another cycle holds the lock: stepping aside is not news either
+    store = StateStore(load_config(config).state.url)
+    with store.lock():
+        assert main(["run", "--config", str(config), "--as-of", AS_OF, "--quiet"]) == 0
+    store.dispose()
+    assert capsys.readouterr() == ("", "")

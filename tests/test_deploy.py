@@ -41,7 +41,7 @@ def _expwatch_argv(command: str) -> list[str]:
     i = next(i for i, w in enumerate(words) if w.endswith("/expwatch") or w == "expwatch")
     out = []
     for w in words[i + 1:]:
-        if w in (">>", ">", "2>&1", "&&", "|"):
+        if w in (">>", ">", "2>&1", "2>>", "&&", "|"):
             break
         out.append(w)
     return out
@@ -60,7 +60,8 @@ def _subcommands() -> set[str]:
 
 
 def test_crontab_lines_parse_and_use_flock():
-    lines = [ln for ln in (DEPLOY / "crontab.example").read_text().splitlines() if ln.strip() and not ln.startswith("#")]
+    lines = [ln for ln in (DEPLOY / "crontab.example").read_text().splitlines()
+             if ln.strip() and not ln.startswith("#") and not re.match(r"^[A-Z_]+=", ln)]
     assert len(lines) == 2
     cmds = {}
     for ln in lines:
@@ -74,6 +75,7 @@ def test_crontab_lines_parse_and_use_flock():
     locks = {re.search(r"flock -n (\S+)", c).group(1) for _, c in cmds.values()}
     assert len(locks) == 2  # the digest never waits behind a cycle
     _parses(_expwatch_argv(cmds["run"][1]))
+    assert "--quiet" in _expwatch_argv(cmds["run"][1])  # cron mails only news
     _parses(_expwatch_argv(cmds["digest"][1]))
 
 

@@ -20,13 +20,16 @@ ALLOCATION = ("srm", "leakage", "freshness")
 
 @pytest.fixture(scope="module")
 def replayed(demo):
+    """Four weeks, hourly: the fast replay of the allocation checks (the metric checks are
+    replayed in test_metric_checks_replay_daily, over a shorter period: each metric step
+    re-reads the metric events)."""
     cfg = load_config(demo["config"])
     summary = demo["summary"]
     onsets = {(p.experiment, p.check): p.onset for p in summary.planted if p.onset is not None}
-    start = DEMO_AS_OF - timedelta(days=12)
+    start = DEMO_AS_OF - timedelta(days=28)
     store = Path(cfg.state.url.removeprefix("sqlite:///"))
     before = _fingerprint(store)
-    report = replay(cfg, start, DEMO_AS_OF, every=timedelta(hours=48), onsets=onsets, allocation_only=True)
+    report = replay(cfg, start, DEMO_AS_OF, every=timedelta(hours=1), onsets=onsets, allocation_only=True)
     return cfg, summary, report, (before, _fingerprint(store))
 
 
@@ -37,7 +40,8 @@ def _fingerprint(path: Path):
 @pytest.mark.slow
 def test_every_planted_allocation_problem_is_detected_not_before_its_onset(replayed):
     cfg, summary, report, _ = replayed
-    assert report.steps == 7 and report.end == DEMO_AS_OF and not report.skipped
+    assert report.steps == 28 * 24 + 1 and report.end == DEMO_AS_OF and not report.skipped
+    assert report.mode == "fast"
     planted = [p for p in summary.planted if p.check in ALLOCATION and p.experiment in summary.live]
     assert len(planted) >= 4
     for p in planted:
@@ -53,10 +57,15 @@ def test_every_planted_allocation_problem_is_detected_not_before_its_onset(repla
 
 @pytest.mark.slow
 def test_healthy_experiments_never_alert(replayed):
+    """Over 673 hourly looks a healthy experiment may show a chi-square *warning* (a one-look
+    p-value below alpha at some hour: expected under repeated looks), but never an alert:
+    alerts come from the always-valid e-process and confidence sequences."""
     _, summary, report, _ = replayed
     assert summary.healthy
-    noisy = [t for t in report.timelines if t.experiment in summary.healthy]
+    noisy = [t for t in report.timelines if t.experiment in summary.healthy and t.max_severity != "warn"]
     assert noisy == []
+    warned = [t for t in report.timelines if t.experiment in summary.healthy]
+    assert all(t.check == "srm" and t.severity_opened == "warn" for t in warned)
 
 
 @pytest.mark.slow
@@ -69,7 +78,7 @@ def test_the_real_state_store_is_not_touched(replayed):
 def test_report_renders_as_text_and_json(replayed):
     _, _, report, _ = replayed
     text = render_replay_text(report)
-    assert text.startswith("replay 2026-11-18 09:00 .. 2026-11-30 09:00 UTC every 2d: 7 cycles")
+    assert text.startswith("replay 2026-11-02 09:00 .. 2026-11-30 09:00 UTC every 1h: 673 steps")
     doc = replay_to_json(report)
     assert doc["format"] == "expwatch.replay/1" and len(doc["alerts"]) == len(report.timelines)
     due = next(a for a in doc["alerts"] if a["experiment"] == "due-date-nudge")
@@ -89,3 +98,67 @@ def test_parse_every_and_bad_ranges(demo):
         replay(cfg, DEMO_AS_OF, datetime.now(UTC) + timedelta(days=1))
     with pytest.raises(ConfigError, match="time zone"):
         replay(cfg, DEMO_AS_OF.replace(tzinfo=None), DEMO_AS_OF)
+
+
+def _core(f):
+    """What must agree between a replay step and a cycle: status, severity and the test statistics
+    (an SRM alert's summary also carries its diagnosis, which the replay does not compute)."""
+    keys = ("units", "log_e_value", "log_e_value_max", "first_crossed_at", "p_value", "chi2", "leaked_units",
+            "share", "null_variant_units", "unknown_variant_units", "last_units_at", "gap_hours",
+            "expected_units_in_gap", "phases")
+    st = {k: f.statistics.get(k) for k in keys if k in f.statistics}
+    st.get("phases") and st.update(phases=[{k: v for k, v in p.items() if k != "end"} for p in st["phases"]])
+    return (f.key, f.status, f.severity, repr(st))
+
+
+@pytest.mark.slow
+def test_fast_replay_steps_equal_full_refresh_cycles(demo):
+    """The fast replay pulls once (to the last step) and reads earlier steps off the leak hours;
+    each step must equal a dry-run, full-refresh cycle at that time."""
+    from monitor.cycle import run_cycle
+    from monitor.replay import _fast_events
+
+    cfg = load_config(demo["config"]).model_copy(update={"metrics": []})
+    steps = [DEMO_AS_OF - timedelta(days=12, hours=5), DEMO_AS_OF - timedelta(days=3), DEMO_AS_OF]
+    fast = {as_of: found for as_of, found, _ in _fast_events(cfg, steps, timedelta(days=1), [], None,
+                                                             with_metrics=False)}
+    checks = {"srm", "leakage", "unknown_variant", "freshness", "design"}
+    for as_of in steps:
+        slow = [f for f in run_cycle(cfg, as_of=as_of, dry_run=True, full_refresh=True, notify=False).findings
+                if f.check in checks]
+        assert len(slow) >= 5 * 12
+        assert sorted(map(_core, fast[as_of])) == sorted(map(_core, slow)), as_of
+
+
+@pytest.mark.slow
+def test_exact_mode_runs_whole_cycles(demo):
+    cfg = load_config(demo["config"])
+    report = replay(cfg, DEMO_AS_OF - timedelta(hours=48), DEMO_AS_OF, every=timedelta(hours=48),
+                    allocation_only=True, mode="cycles")
+    assert report.mode == "cycles" and report.steps == 2 and not report.skipped
+    assert {(t.experiment, t.check) for t in report.timelines} >= {("reader-font-size", "leakage")}
+
+
+def test_fast_mode_needs_whole_hours(demo):
+    cfg = load_config(demo["config"])
+    with pytest.raises(ConfigError, match="whole hours"):
+        replay(cfg, DEMO_AS_OF - timedelta(minutes=90), DEMO_AS_OF, every=timedelta(minutes=30))
+    with pytest.raises(ConfigError, match="whole hours"):
+        replay(cfg, DEMO_AS_OF - timedelta(minutes=30), DEMO_AS_OF)
+    with pytest.raises(ConfigError, match="mode"):
+        replay(cfg, DEMO_AS_OF - timedelta(hours=1), DEMO_AS_OF, mode="slow")
+
+
+@pytest.mark.slow
+def test_metric_checks_replay_daily(demo):
+    """Two days, hourly, metric checks at the first step, after 24 h and at the last step:
+    the planted guardrail harm alerts from the first step and stays open; nothing healthy alerts."""
+    cfg = load_config(demo["config"])
+    summary = demo["summary"]
+    report = replay(cfg, DEMO_AS_OF - timedelta(days=2), DEMO_AS_OF, every=timedelta(hours=1),
+                    metrics_every=timedelta(days=1))
+    assert report.steps == 49 and not report.skipped
+    guard = [t for t in report.timelines if t.check == "guardrail"]
+    assert [(t.experiment, t.opened_at, t.closed_at) for t in guard] == [
+        ("dark-mode-reader", DEMO_AS_OF - timedelta(days=2), None)]
+    assert not [t for t in report.timelines if t.experiment in summary.healthy and t.max_severity != "warn"]

@@ -263,7 +263,13 @@ def test_run_json_logs_carry_run_id_query_durations_and_rows(cfg, capsys, tmp_pa
     logs = [json.loads(x) for x in err.splitlines() if x.strip()]
     queries = [x for x in logs if x.get("event") == "query"]
     assert {q["query"] for q in queries} >= {"registry", "assignments[assigned]"}
-    assert all(q["seconds"] >= 0 and isinstance(q["rows"], int) and q["rows"] > 0 for q in queries)
+    assert all(q["seconds"] >= 0 and isinstance(q["rows"], int) and q["rows"] >= 0 for q in queries)
+    assert all(q["rows"] > 0 for q in queries if q["query"] in ("registry", "assignments[assigned]"))
+    checks = {x["check"]: x for x in logs if x.get("event") == "check"}
+    assert set(checks) == {"allocation", "guardrail", "novelty", "spillover", "collision"}
+    assert all(c["seconds"] >= 0 and c["run_id"] == queries[0]["run_id"] for c in checks.values())
+    assert checks["allocation"]["findings"] == sum(f["check"] in ("srm", "leakage", "unknown_variant", "freshness",
+                                                                 "design") for f in doc["findings"])
     cycle = next(x for x in logs if x.get("event") == "cycle")
     assert cycle["run_id"] == queries[0]["run_id"] and cycle["recorded"] is True
     assert doc["run_id"] == cycle["run_id"]

@@ -152,8 +152,11 @@ class SequentialSRMResult:
 # ----------------------------------------------------------------------------------------------
 
 
-def _as_counts(counts: object, name: str) -> np.ndarray:
-    """Return ``counts`` as a float64 array after checking it holds non-negative integers."""
+def _checked_counts(counts: object, name: str) -> np.ndarray:
+    """Return ``counts`` as an int64 or float64 array after checking it holds non-negative integers.
+
+    Integer input is not copied into floats (and needs no finiteness or integrality check).
+    """
     arr = np.asarray(counts)
     if arr.dtype == bool or not (
         np.issubdtype(arr.dtype, np.integer) or np.issubdtype(arr.dtype, np.floating)
@@ -161,7 +164,12 @@ def _as_counts(counts: object, name: str) -> np.ndarray:
         raise ValueError(
             f"{name} must be a numeric array of non-negative integers, got dtype {arr.dtype}"
         )
-    arr = arr.astype(np.float64)
+    if np.issubdtype(arr.dtype, np.integer):
+        arr = arr.astype(np.int64, copy=False)
+        if arr.size and arr.min() < 0:
+            raise ValueError(f"{name} contains negative counts")
+        return arr
+    arr = arr.astype(np.float64, copy=False)
     if not np.all(np.isfinite(arr)):
         raise ValueError(f"{name} contains NaN or infinite values")
     if np.any(arr < 0):
@@ -169,6 +177,11 @@ def _as_counts(counts: object, name: str) -> np.ndarray:
     if np.any(arr != np.floor(arr)):
         raise ValueError(f"{name} contains non-integer counts")
     return arr
+
+
+def _as_counts(counts: object, name: str) -> np.ndarray:
+    """Return ``counts`` as a float64 array after checking it holds non-negative integers."""
+    return _checked_counts(counts, name).astype(np.float64)
 
 
 def _as_weights(
@@ -181,11 +194,11 @@ def _as_weights(
     arr = np.asarray(weights, dtype=np.float64)
     if arr.shape != shape:
         raise ValueError(f"{name} has shape {arr.shape}, expected {shape} (same as the counts)")
-    if not np.all(np.isfinite(arr)):
-        raise ValueError(f"{name} contains NaN or infinite values")
-    if np.any(arr < 0):
+    if arr.size and not (arr.min() >= 0 and arr.max() < np.inf):  # NaN fails both
+        if not np.all(np.isfinite(arr)):
+            raise ValueError(f"{name} contains NaN or infinite values")
         raise ValueError(f"{name} contains negative weights")
-    total = arr.sum(axis=-1, keepdims=True)
+    total = _slot_sum(arr)[..., np.newaxis]
     empty = total == 0
     bad = np.abs(total - 1.0) > _WEIGHT_SUM_TOL
     if allow_empty_rows:
@@ -196,7 +209,17 @@ def _as_weights(
             f"{name} rows must sum to 1 (tolerance {_WEIGHT_SUM_TOL:g}); "
             f"found a row summing to {worst:.9g}"
         )
+    if np.all(empty | (total == 1.0)):
+        return arr  # already normalised: dividing by 1 would change nothing
     return np.divide(arr, total, out=np.zeros_like(arr), where=~empty)
+
+
+def _slot_sum(a: np.ndarray) -> np.ndarray:
+    """``a.sum(axis=-1)`` for a short last axis (slot by slot, which is faster there)."""
+    out = a[..., 0].copy()
+    for k in range(1, a.shape[-1]):
+        out += a[..., k]
+    return out
 
 
 def _check_padding(counts: np.ndarray, weights: np.ndarray, name: str) -> None:
@@ -253,10 +276,184 @@ def _log_bf_single(x: np.ndarray, w: np.ndarray, c: float) -> np.ndarray:
     return per_slot.sum(axis=-1) + (special.gammaln(c) - special.gammaln(c + n))
 
 
+def _logmeanexp(per_c: np.ndarray) -> np.ndarray:
+    """``log(mean(exp(per_c), axis=0))`` without overflow (all inputs finite)."""
+    top = per_c.max(axis=0)
+    acc = np.zeros_like(top)
+    for row in per_c:
+        acc += np.exp(row - top)
+    return top + np.log(acc) - np.log(per_c.shape[0])
+
+
 def _log_bf_mixture(x: np.ndarray, w: np.ndarray, conc: np.ndarray) -> np.ndarray:
     """Log of the equal-weight mixture over ``conc`` of the single-concentration Bayes factors."""
     per_c = np.stack([_log_bf_single(x, w, float(c)) for c in conc], axis=0)
-    return special.logsumexp(per_c, axis=0) - np.log(conc.size)
+    return _logmeanexp(per_c)
+
+
+# Cells (experiments x looks) per block of the sequential computation: bounds the working
+# memory (a few arrays of ``len(conc) x _BLOCK`` floats) whatever the number of experiments.
+_BLOCK = 1 << 16
+# Largest memoised log-gamma table (entries per concentration; 8 MiB) and most distinct weight
+# values per block for the memoised path; beyond them terms are computed per cell.
+_TABLE_MAX = 1 << 20
+_MAX_WEIGHT_VALUES = 16
+
+
+def _weight_codes(w: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
+    """Distinct weight values of ``(N, K)`` cells and each cell's index into them.
+
+    Weights are constant within a phase, so a block of cells holds few distinct values: the
+    candidates come from a sample of the cells, and every cell is then checked to equal its
+    candidate exactly (all values are collected if one does not). None if there are more
+    than :data:`_MAX_WEIGHT_VALUES`. The value 0 (padding) is always present.
+    """
+    step = max(1, w.shape[0] // 512)
+    values = np.unique(np.concatenate([w[::step].ravel(), w[-1], [0.0]]))
+    for attempt in range(2):
+        if values.size > _MAX_WEIGHT_VALUES:
+            return None
+        codes = np.zeros(w.shape, dtype=np.int64)
+        for v in values[1:]:
+            codes += w >= v
+        if np.array_equal(values[codes], w):
+            return values, codes
+        values = np.union1d(np.unique(w), [0.0])
+    return None  # pragma: no cover - the full set of values always matches
+
+
+class _Terms:
+    """Sums of log-gamma terms of ``log BF_c`` per cell, memoised over integer counts.
+
+    The terms of a cell depend only on its integer counts, its weights and ``c``. When the
+    weights take few distinct values and the counts are small compared with the number of
+    cells (hourly looks of many experiments), each term ``gammaln(a + j) - gammaln(a) - j log w``
+    (``a = c w``) and ``gammaln(c) - gammaln(c + j)`` is computed once per distinct weight and
+    count, and looked up per cell: the same floating-point expressions as
+    :func:`_log_bf_single`, so the same numbers. Otherwise they are evaluated per cell.
+    """
+
+    def __init__(self, conc: np.ndarray, x_max: int, n_max: int, n_cells: int, n_slots: int):
+        self.conc = conc
+        self.x_len, self.n_len = x_max + 1, n_max + 1
+        cost = 2 * self.x_len + self.n_len
+        self.tabulate = cost <= _TABLE_MAX and 4 * cost <= n_cells * (n_slots + 1)
+        self._slot: dict[float, np.ndarray] = {}
+        self._stacked: dict[bytes, np.ndarray] = {}
+        self._total: np.ndarray | None = None
+
+    def _slot_table(self, v: float) -> np.ndarray:
+        """``(C, x_len)``: per-slot terms for weight ``v`` (zeros for a padding slot)."""
+        if v not in self._slot:
+            tab = np.zeros((self.conc.size, self.x_len))
+            if v > 0:
+                j = np.arange(self.x_len, dtype=np.float64)
+                for r, c in enumerate(self.conc):
+                    a = float(c) * v
+                    tab[r] = special.gammaln(a + j) - special.gammaln(a) - j * np.log(v)
+            self._slot[v] = tab
+        return self._slot[v]
+
+    def _tables(self, values: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
+        key = values.tobytes()
+        if key not in self._stacked:
+            if (len(self._slot) + values.size) * self.x_len > _TABLE_MAX:
+                return None
+            # (C, d * x_len): row r holds, for concentration r, the terms of each value in turn
+            self._stacked[key] = np.concatenate([self._slot_table(float(v)) for v in values], axis=1)
+        if self._total is None:
+            j = np.arange(self.n_len, dtype=np.float64)
+            self._total = np.stack([special.gammaln(c) - special.gammaln(c + j) for c in self.conc])
+        return self._stacked[key], self._total
+
+    def mixture(self, x: np.ndarray, w: np.ndarray) -> np.ndarray:
+        """Log mixture Bayes factor of ``(N, K)`` cells (integer-valued counts ``x``)."""
+        coded = _weight_codes(w) if self.tabulate and x.shape[0] else None
+        tables = self._tables(coded[0]) if coded is not None else None
+        if coded is None or tables is None:
+            return _log_bf_mixture(x.astype(np.float64, copy=False), w, self.conc)
+        slot, total = tables
+        xi = x.astype(np.int64, copy=False)
+        index = coded[1] * self.x_len + xi
+        n = _slot_sum(xi)
+        per_c = np.empty((self.conc.size, x.shape[0]))
+        for r in range(self.conc.size):
+            row = per_c[r]
+            np.take(slot[r], index[:, 0], out=row)
+            for k in range(1, x.shape[1]):
+                row += np.take(slot[r], index[:, k])
+            row += np.take(total[r], n)
+        return _logmeanexp(per_c)
+
+
+def _weight_changes(
+    w: np.ndarray, start: np.ndarray, has_weights: np.ndarray
+) -> np.ndarray | None:
+    """``(B, T - 1)`` True where the weights change within a phase; None if they never do."""
+    if np.array_equal(w[:, 1:], w[:, :-1]):
+        return None
+    same_phase = ~start[:, 1:] & has_weights[:, 1:] & has_weights[:, :-1]
+    step = w[:, 1:] - w[:, :-1]
+    moved = np.zeros(same_phase.shape, dtype=bool)
+    for k in range(w.shape[-1]):
+        moved |= np.abs(step[..., k]) > _WEIGHT_SUM_TOL
+        moved |= (w[:, 1:, k] > 0) != (w[:, :-1, k] > 0)
+    changed = same_phase & moved
+    return changed if changed.any() else None
+
+
+def _sequential_block(
+    inc: np.ndarray, w_in: np.ndarray, ph: np.ndarray, row0: int, terms: _Terms
+) -> np.ndarray:
+    """Log e-values ``(B, T)`` of a block of experiments (rows ``row0 ...`` of the input)."""
+    n_exp, n_looks, n_slots = inc.shape
+    w = _as_weights(w_in, inc.shape, "weights", allow_empty_rows=True)
+    _check_padding(inc, w, "increments")
+    look = np.arange(n_looks)
+    rows = np.arange(n_exp)[:, np.newaxis]
+    # Phase boundaries: start[e, t] is True at the first look of a phase, end[e, t] at its last.
+    start = np.ones((n_exp, n_looks), dtype=bool)
+    start[:, 1:] = ph[:, 1:] != ph[:, :-1]
+    end = np.ones((n_exp, n_looks), dtype=bool)
+    end[:, :-1] = start[:, 1:]
+    one_phase = not start[:, 1:].any()
+    start_idx = np.maximum.accumulate(np.where(start, look, 0), axis=1)
+
+    # Forward-fill weights over padded looks, within the phase only.
+    active = _slot_sum(w) > 0
+    if active.all():
+        has_weights, w_filled = active, w
+    else:
+        last_active = np.maximum.accumulate(np.where(active, look, -1), axis=1)
+        has_weights = last_active >= start_idx
+        w_filled = w[rows, np.maximum(last_active, 0)]
+        w_filled = np.where(has_weights[..., np.newaxis], w_filled, 0.0)
+    changed = _weight_changes(w_filled, start, has_weights)
+    if changed is not None:
+        e_bad, t_bad = np.argwhere(changed)[0]
+        raise ValueError(
+            f"weights change within a phase (experiment row {row0 + e_bad}, look {t_bad + 1}); "
+            "start a new phase id"
+        )
+
+    # Units accumulated since the start of the current phase.
+    cum = np.cumsum(inc, axis=1)
+    if one_phase:
+        in_phase = cum
+    else:
+        cum_pad = np.concatenate([np.zeros((n_exp, 1, n_slots), dtype=cum.dtype), cum], axis=1)
+        in_phase = cum - cum_pad[rows, start_idx]
+
+    # A phase with no weights so far has no units so far; its factor is exactly 1.
+    lbf = terms.mixture(in_phase.reshape(-1, n_slots), w_filled.reshape(-1, n_slots))
+    lbf = np.where(has_weights, lbf.reshape(n_exp, n_looks), 0.0)
+    if one_phase:
+        return lbf
+
+    # Sum of the final values of the phases completed before each look.
+    completed = np.cumsum(np.where(end, lbf, 0.0), axis=1)
+    before = np.concatenate([np.zeros((n_exp, 1)), completed[:, :-1]], axis=1)
+    return before + lbf
 
 
 # ----------------------------------------------------------------------------------------------
@@ -436,8 +633,10 @@ def srm_sequential(
     gives empty ``log_e`` and final/max values of 0.0 with ``first_cross == -1``.
 
     The computation is vectorised: cumulative sums along ``T`` with per-phase resets and a
-    cumulative sum of completed-phase contributions; the only Python loop is over the
-    concentration grid.
+    cumulative sum of completed-phase contributions, in blocks of experiments so that memory
+    stays bounded. The log-gamma terms are memoised over integer counts when that is cheaper
+    than evaluating them per look (many experiments with counts in the tens of thousands); the
+    result is the same either way.
 
     References
     ----------
@@ -449,7 +648,7 @@ def srm_sequential(
     if not np.isfinite(alpha_f) or not 0.0 < alpha_f < 1.0:
         raise ValueError(f"alpha must be strictly between 0 and 1, got {alpha!r}")
     conc = _as_concentrations(concentrations)
-    inc = _as_counts(increments, "increments")
+    inc = _checked_counts(increments, "increments")
     ph = np.asarray(phase)
     if inc.ndim == 2:
         inc = inc[np.newaxis]
@@ -457,7 +656,7 @@ def srm_sequential(
         w_in = w_in[np.newaxis] if w_in.ndim == 2 else w_in
         ph = ph[np.newaxis] if ph.ndim == 1 else ph
     elif inc.ndim == 3:
-        w_in = weights
+        w_in = np.asarray(weights, dtype=np.float64)
     else:
         raise ValueError(
             f"increments must have shape (E, T, K) or (T, K), got {inc.ndim} dimensions"
@@ -473,17 +672,19 @@ def srm_sequential(
         )
         if not integral:
             raise ValueError("phase must hold integer phase ids")
-    ph = ph.astype(np.int64)
-    if np.any(np.diff(ph, axis=1) < 0):
+    ph = ph.astype(np.int64, copy=False)
+    if np.any(ph[:, 1:] < ph[:, :-1]):
         raise ValueError("phase ids must be non-decreasing along the look axis")
-    w = _as_weights(w_in, inc.shape, "weights", allow_empty_rows=True)
-    _check_padding(inc, w, "increments")
+    if w_in.shape != inc.shape:
+        raise ValueError(
+            f"weights has shape {w_in.shape}, expected {inc.shape} (same as the counts)"
+        )
     threshold = float(np.log(1.0 / alpha_f))
 
-    if n_looks == 0:
+    if n_looks == 0 or n_exp == 0:
         zeros = np.zeros(n_exp)
         return SequentialSRMResult(
-            log_e=np.zeros((n_exp, 0)),
+            log_e=np.zeros((n_exp, n_looks)),
             log_e_final=zeros,
             log_e_max=zeros.copy(),
             crossed=np.zeros(n_exp, dtype=bool),
@@ -491,45 +692,15 @@ def srm_sequential(
             threshold=threshold,
         )
 
-    look = np.arange(n_looks)
-    rows = np.arange(n_exp)[:, np.newaxis]
-    # Phase boundaries: start[e, t] is True at the first look of a phase, end[e, t] at its last.
-    start = np.ones((n_exp, n_looks), dtype=bool)
-    start[:, 1:] = ph[:, 1:] != ph[:, :-1]
-    end = np.ones((n_exp, n_looks), dtype=bool)
-    end[:, :-1] = start[:, 1:]
-    start_idx = np.maximum.accumulate(np.where(start, look, 0), axis=1)
-
-    # Forward-fill weights over padded looks, within the phase only.
-    active = w.sum(axis=-1) > 0
-    last_active = np.maximum.accumulate(np.where(active, look, -1), axis=1)
-    has_weights = last_active >= start_idx
-    w_filled = w[rows, np.maximum(last_active, 0)]
-    w_filled = np.where(has_weights[..., np.newaxis], w_filled, 0.0)
-    same_phase = ~start[:, 1:] & has_weights[:, 1:] & has_weights[:, :-1]
-    drift = np.abs(w_filled[:, 1:] - w_filled[:, :-1]).max(axis=-1, initial=0.0)
-    moved_slot = np.any((w_filled[:, 1:] > 0) != (w_filled[:, :-1] > 0), axis=-1)
-    changed = same_phase & ((drift > _WEIGHT_SUM_TOL) | moved_slot)
-    if np.any(changed):
-        e_bad, t_bad = np.argwhere(changed)[0]
-        raise ValueError(
-            f"weights change within a phase (experiment row {e_bad}, look {t_bad + 1}); "
-            "start a new phase id"
-        )
-
-    # Units accumulated since the start of the current phase.
-    cum = np.cumsum(inc, axis=1)
-    cum_pad = np.concatenate([np.zeros((n_exp, 1, n_slots)), cum], axis=1)
-    in_phase = cum - cum_pad[rows, start_idx]
-
-    # A phase with no weights so far has no units so far; its factor is exactly 1.
-    lbf = _log_bf_mixture(in_phase, w_filled, conc)
-    lbf = np.where(has_weights, lbf, 0.0)
-
-    # Sum of the final values of the phases completed before each look.
-    completed = np.cumsum(np.where(end, lbf, 0.0), axis=1)
-    before = np.concatenate([np.zeros((n_exp, 1)), completed[:, :-1]], axis=1)
-    log_e = before + lbf
+    # Counts since a phase start never exceed an experiment's totals: bounds of the tables.
+    per_slot = inc.sum(axis=1)
+    terms = _Terms(conc, int(per_slot.max()), int(per_slot.sum(axis=1).max()),
+                   n_exp * n_looks, n_slots)
+    log_e = np.empty((n_exp, n_looks))
+    step = max(1, _BLOCK // n_looks)
+    for lo in range(0, n_exp, step):
+        hi = min(lo + step, n_exp)
+        log_e[lo:hi] = _sequential_block(inc[lo:hi], w_in[lo:hi], ph[lo:hi], lo, terms)
 
     hit = log_e >= threshold
     crossed = hit.any(axis=1)

@@ -21,12 +21,12 @@ passes through Python.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from datetime import datetime, timedelta, timezone
+from datetime import UTC, datetime, timedelta
 from pathlib import Path
 
 import duckdb
 
-END = datetime(2026, 11, 30, 0, 0, tzinfo=timezone.utc)
+END = datetime(2026, 11, 30, 0, 0, tzinfo=UTC)
 DAYS = 28
 
 
@@ -55,6 +55,7 @@ def build(path: Path, size: Size, *, threads: int = 2) -> None:
     con = duckdb.connect(str(path))
     try:
         con.execute(f"SET threads = {threads}")
+        con.execute("SET enable_progress_bar = false")
         con.execute(
             """
             CREATE TABLE experiments AS
@@ -99,14 +100,23 @@ def build(path: Path, size: Size, *, threads: int = 2) -> None:
 
 
 CONFIG = """\
-warehouse: {url: "duckdb:///warehouse.duckdb"}
-state: {url: "sqlite:///state.sqlite"}
-registry: {table: experiments}
-assignments: {table: assignments, segments: [platform]}
+warehouse: {{url: "{url}", query_timeout_seconds: 7200}}
+state: {{url: "sqlite:///state.sqlite"}}
+registry: {{table: experiments}}
+assignments: {{table: assignments, segments: [platform]}}
+metrics:
+  - name: render_ms
+    role: guardrail
+    kind: mean
+    bad_direction: increase
+    table: page_views
+    columns: {{unit: unit_id, timestamp: viewed_at, value: render_ms}}
+    aggregate: sum
 """
 
 
-def write_config(directory: Path) -> Path:
+def write_config(directory: Path, url: str = "duckdb:///warehouse.duckdb") -> Path:
+    """The benchmark config: the SRM sources and one guardrail metric on ``page_views``."""
     p = directory / "expwatch.yaml"
-    p.write_text(CONFIG)
+    p.write_text(CONFIG.format(url=url))
     return p
