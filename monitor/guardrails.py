@@ -167,14 +167,16 @@ class MetricPull:
     frame: pd.DataFrame
 
 
-def _tidy(raw: pd.DataFrame) -> pd.DataFrame:
+def tidy_stat_frame(raw: pd.DataFrame, columns: Sequence[str] | None = None) -> pd.DataFrame:
+    """A metric query's result as experiment (str), variant (str), hour (aware UTC) and float
+    ``columns`` (default: the guardrail statistics); missing or NULL sums are 0."""
     out = pd.DataFrame({
         "experiment": raw["experiment"].astype(str) if len(raw) else pd.Series(dtype=object),
         "variant": raw["variant"].astype(str) if len(raw) else pd.Series(dtype=object),
     })
     hours = pd.to_datetime(raw["hour"]) if len(raw) else pd.Series(pd.to_datetime([]))
     out["hour"] = hours.dt.tz_localize("UTC") if hours.dt.tz is None else hours.dt.tz_convert("UTC")
-    for c in STAT_COLUMNS:
+    for c in (STAT_COLUMNS if columns is None else columns):
         out[c] = pd.to_numeric(raw[c]).fillna(0.0).astype(float) if c in raw else 0.0
     return out
 
@@ -205,7 +207,7 @@ def pull_metrics(cfg: Config, wh: Warehouse, experiments: Sequence[Experiment], 
     if not cfg.metrics:
         return out
     if not experiments:
-        return [MetricPull(m, _tidy(pd.DataFrame())) for m in cfg.metrics]
+        return [MetricPull(m, tidy_stat_frame(pd.DataFrame())) for m in cfg.metrics]
     ids = [e.id for e in experiments]
     window_start = _floor_hour(min(e.start for e in experiments))
     src = cfg.sources[0]
@@ -214,7 +216,7 @@ def pull_metrics(cfg: Config, wh: Warehouse, experiments: Sequence[Experiment], 
             on_query(m.name)
         params, expanding = metric_params(m, window_start, as_of, ids)
         raw = wh.query(f"metric[{m.name}]", render_metric_sql(m, src, wh), params, expanding=expanding)
-        out.append(MetricPull(m, _tidy(raw)))
+        out.append(MetricPull(m, tidy_stat_frame(raw)))
     return out
 
 

@@ -59,7 +59,7 @@ import pandas as pd
 
 from monitor.config import CheckConfig, Config, MetricConfig
 from monitor.findings import Finding
-from monitor.guardrails import metric_context
+from monitor.guardrails import metric_context, tidy_stat_frame
 from monitor.registry import Experiment, Phase
 from monitor.stats import effects as fx
 from monitor.stats.interference import effect_trend, ratio_change
@@ -133,15 +133,7 @@ def pull_spillover(cfg: Config, wh: Warehouse, experiments: Sequence[Experiment]
 
 
 def _tidy(raw: pd.DataFrame) -> pd.DataFrame:
-    out = pd.DataFrame({
-        "experiment": raw["experiment"].astype(str) if len(raw) else pd.Series(dtype=object),
-        "variant": raw["variant"].astype(str) if len(raw) else pd.Series(dtype=object),
-    })
-    hours = pd.to_datetime(raw["hour"]) if len(raw) else pd.Series(pd.to_datetime([]))
-    out["hour"] = hours.dt.tz_localize("UTC") if hours.dt.tz is None else hours.dt.tz_convert("UTC")
-    for c in SUM_COLUMNS:
-        out[c] = pd.to_numeric(raw[c]).fillna(0.0).astype(float) if c in raw else 0.0
-    return out
+    return tidy_stat_frame(raw, SUM_COLUMNS)
 
 
 def _ceil_hour(t: datetime) -> datetime:

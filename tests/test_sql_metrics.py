@@ -16,7 +16,8 @@ import pytest
 from conftest import load_frames_into_postgres
 
 from monitor.config import AssignmentColumns, MetricConfig, SourceConfig
-from monitor.guardrails import STAT_COLUMNS, _tidy, metric_params, render_metric_sql
+from monitor.guardrails import STAT_COLUMNS, metric_params, render_metric_sql
+from monitor.guardrails import tidy_stat_frame as _tidy
 from monitor.warehouse import Warehouse
 
 T0 = datetime(2026, 3, 28, 20, 0)  # spans the Europe/Berlin DST change; warehouse times are UTC
