@@ -64,6 +64,7 @@ import pandas as pd
 
 from monitor.config import CheckConfig, Config, MetricConfig, MetricSourceConfig
 from monitor.findings import Finding
+from monitor.firsts import relation as first_relation
 from monitor.registry import Experiment
 from monitor.stats import effects as fx
 from monitor.stats.interference import independence_chi2, interaction_wald
@@ -128,6 +129,7 @@ def pull_collisions(cfg: Config, wh: Warehouse, experiments: Sequence[Experiment
         on_query("shared-units")
     ctx, params, expanding = _guardrail_context(guards, cfg, q)
     params.update(base, event_start=_naive(window_start))
+    ctx["firsts"] = first_relation(wh, cfg.sources[0], base["experiment_ids"], window_start, as_of)
     sql = render("collision.sql.j2", wh.dialect, **ctx, n_phases=n_phases)
     raw = wh.query("collision", sql, params, expanding=("experiment_ids", *expanding))
     keys = ["experiment_a", "experiment_b", "phase_a", "phase_b", "variant_a", "variant_b"]
@@ -175,7 +177,7 @@ def _assignment_context(cfg: Config, q: Quoter) -> dict[str, Any]:
     return {"assignment_source": q.from_clause(cfg.sources[0].table, cfg.sources[0].sql, "user_source"),
             "a": {"unit": q.ident(a.unit), "experiment": q.ident(a.experiment), "variant": q.ident(a.variant),
                   "timestamp": q.ident(a.timestamp)},
-            "parts": [], "ratio": False, "cuped": False}
+            "parts": [], "ratio": False, "cuped": False, "firsts": None}
 
 
 def _fmt_p(p: float) -> str:

@@ -69,11 +69,21 @@ class WarehouseConfig(_Model):
     spark: SparkConfig | None = None
     """Instead of url: run the queries on Apache Spark SQL."""
     query_timeout_seconds: Annotated[float, Field(gt=0)] = 600.0
+    memory_limit: Annotated[str, Field(pattern=r"^\s*\d+(\.\d+)?\s*(B|KB|MB|GB|TB|KiB|MiB|GiB|TiB)\s*$")] | None = None
+    """DuckDB only: the engine's memory cap (e.g. "1GB"); above it joins and sorts spill to spill_directory.
+    Default: DuckDB's own (80% of RAM)."""
+    threads: Annotated[int, Field(ge=1)] | None = None
+    """DuckDB only: worker threads (default: one per core)."""
+    spill_directory: str | None = None
+    """DuckDB only: where it spills; default a per-run folder under the system temp directory."""
 
     @model_validator(mode="after")
     def _one_engine(self) -> WarehouseConfig:
         if (self.url is None) == (self.spark is None):
             raise ValueError("give exactly one of 'url' (a SQLAlchemy URL) or 'spark'")
+        duck_only = [k for k in ("memory_limit", "threads", "spill_directory") if getattr(self, k) is not None]
+        if duck_only and not (self.url or "").startswith("duckdb:"):
+            raise ValueError(f"{', '.join(duck_only)}: DuckDB settings, but the warehouse is not a duckdb: URL")
         return self
 
 
@@ -172,7 +182,7 @@ class CheckConfig(_Model):
     guardrail_multiplicity: Literal["none", "bh", "ebh"] = "none"
     """FDR control across the guardrails of one experiment: none, bh (p-values) or ebh (e-values)."""
     novelty_alpha: Annotated[float, Field(gt=0, lt=0.5)] = 0.05
-    """Novelty check: chance of ever flagging a constant effect in an experiment's phase (spent over daily looks)."""
+    """Novelty check: chance of ever flagging a constant effect in an experiment's phase (spent over its looks, every novelty_look_days)."""
     novelty_max_age_days: Annotated[int, Field(ge=2, le=90)] = 28
     """Novelty check: oldest age (days since first exposure) compared."""
     novelty_look_days: Annotated[int, Field(ge=1, le=28)] = 7

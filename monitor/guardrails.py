@@ -47,6 +47,7 @@ from monitor.config import (
     SourceConfig,
 )
 from monitor.findings import Finding
+from monitor.firsts import relation as first_relation
 from monitor.registry import Experiment
 from monitor.stats import effects as fx
 from monitor.templates import Quoter, render
@@ -115,12 +116,17 @@ def metric_context(metric: MetricConfig, assignments: SourceConfig, q: Quoter) -
         "parts": parts,
         "ratio": metric.kind == "ratio",
         "cuped": metric.cuped is not None,
+        "firsts": None,
     }
 
 
-def render_metric_sql(metric: MetricConfig, assignments: SourceConfig, wh: Warehouse) -> str:
-    """The query for one metric, rendered for the warehouse's dialect."""
-    return render("metrics.sql.j2", wh.dialect, **metric_context(metric, assignments, Quoter(wh.dialect)))
+def render_metric_sql(metric: MetricConfig, assignments: SourceConfig, wh: Warehouse, *,
+                      firsts: str | None = None) -> str:
+    """The query for one metric, rendered for the warehouse's dialect; ``firsts`` names
+    the run's first-assignment relation (:mod:`monitor.firsts`) to read units from."""
+    ctx = metric_context(metric, assignments, Quoter(wh.dialect))
+    ctx["firsts"] = firsts
+    return render("metrics.sql.j2", wh.dialect, **ctx)
 
 
 def _naive(t: datetime) -> datetime:
@@ -215,7 +221,8 @@ def pull_metrics(cfg: Config, wh: Warehouse, experiments: Sequence[Experiment], 
         if on_query:
             on_query(m.name)
         params, expanding = metric_params(m, window_start, as_of, ids)
-        raw = wh.query(f"metric[{m.name}]", render_metric_sql(m, src, wh), params, expanding=expanding)
+        firsts = first_relation(wh, src, ids, window_start, as_of)
+        raw = wh.query(f"metric[{m.name}]", render_metric_sql(m, src, wh, firsts=firsts), params, expanding=expanding)
         out.append(MetricPull(m, tidy_stat_frame(raw)))
     return out
 

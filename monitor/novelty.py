@@ -57,6 +57,7 @@ from scipy.stats import norm
 
 from monitor.config import CheckConfig, Config, MetricConfig, SourceConfig
 from monitor.findings import Finding
+from monitor.firsts import relation as first_relation
 from monitor.guardrails import metric_context
 from monitor.registry import Experiment
 from monitor.stats import effects as fx
@@ -78,10 +79,13 @@ def novelty_metrics(cfg: Config) -> list[MetricConfig]:
     return [m for m in cfg.metrics if m.role in ("primary", "guardrail") and m.aggregate != "mean"]
 
 
-def render_novelty_sql(metric: MetricConfig, assignments: SourceConfig, wh: Warehouse, experiments: int) -> str:
-    """The per-age query for one metric and ``experiments`` live experiments, rendered for the warehouse's dialect."""
-    return render("novelty.sql.j2", wh.dialect, phase_count=experiments,
-                  **metric_context(metric, assignments, Quoter(wh.dialect)))
+def render_novelty_sql(metric: MetricConfig, assignments: SourceConfig, wh: Warehouse, experiments: int, *,
+                       firsts: str | None = None) -> str:
+    """The per-age query for one metric and ``experiments`` live experiments, rendered for the
+    warehouse's dialect; ``firsts`` names the run's first-assignment relation (:mod:`monitor.firsts`)."""
+    ctx = metric_context(metric, assignments, Quoter(wh.dialect))
+    ctx["firsts"] = firsts
+    return render("novelty.sql.j2", wh.dialect, phase_count=experiments, **ctx)
 
 
 def window(e: Experiment, as_of: datetime, every: int) -> tuple[datetime, datetime]:
@@ -99,6 +103,10 @@ def window(e: Experiment, as_of: datetime, every: int) -> tuple[datetime, dateti
 
 def _naive(t: datetime) -> datetime:
     return t.astimezone(UTC).replace(tzinfo=None)
+
+
+def _floor_hour(t: datetime) -> datetime:
+    return t.replace(minute=0, second=0, microsecond=0)
 
 
 def _floor_day(t: datetime) -> datetime:
@@ -172,6 +180,9 @@ def pull_novelty(cfg: Config, wh: Warehouse, experiments: Sequence[Experiment], 
         when no experiment has a whole look of data yet.
     """
     metrics = novelty_metrics(cfg)
+    # the same window start as every other query of the run (all live experiments), so
+    # they can share the run's first-assignment relation (monitor.firsts)
+    window_start = _floor_hour(min(e.start for e in experiments)) if experiments else None
     windows = {e.id: window(e, as_of, cfg.checks.novelty_look_days) for e in experiments}
     experiments = [e for e in experiments if windows[e.id][0] < windows[e.id][1]]
     if not experiments:
@@ -179,7 +190,8 @@ def pull_novelty(cfg: Config, wh: Warehouse, experiments: Sequence[Experiment], 
     end = max(u for _, u in windows.values())
     src = cfg.sources[0]
     ids = [e.id for e in experiments]
-    window_start = _floor_day(min(e.start for e in experiments))
+    assert window_start is not None
+    firsts = first_relation(wh, src, ids, window_start, as_of) if metrics else None
     out = []
     for m in metrics:
         name = f"novelty[{m.name}]"
@@ -196,7 +208,8 @@ def pull_novelty(cfg: Config, wh: Warehouse, experiments: Sequence[Experiment], 
             if spec is not None and spec.filter_values is not None:
                 params[f"{key}_filter_values"] = list(spec.filter_values)
                 expanding.append(f"{key}_filter_values")
-        raw = wh.query(name, render_novelty_sql(m, src, wh, len(experiments)), params, expanding=tuple(expanding))
+        raw = wh.query(name, render_novelty_sql(m, src, wh, len(experiments), firsts=firsts), params,
+                       expanding=tuple(expanding))
         out.append(NoveltyPull(m, _tidy(raw), windows))
     return out
 

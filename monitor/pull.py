@@ -32,6 +32,7 @@ from datetime import datetime, timedelta, timezone
 import pandas as pd
 
 from monitor.config import Config, SourceConfig
+from monitor.firsts import relation as first_relation
 from monitor.registry import Experiment
 from monitor.state import StateStore
 from monitor.templates import Quoter, render, source_context
@@ -58,15 +59,17 @@ class PulledSource:
     """False for a backtest (``as_of`` before a stored watermark): nothing may be stored."""
 
 
-def render_source_sql(src: SourceConfig, wh: Warehouse, *, incremental: bool = False, leak_hours: bool = False) -> str:
+def render_source_sql(src: SourceConfig, wh: Warehouse, *, incremental: bool = False, leak_hours: bool = False,
+                      firsts: str | None = None) -> str:
     """The assignment query of one source.
 
     ``incremental`` (``since`` after the window start) reads the older rows only
     to drop units already assigned before ``since``; ``leak_hours`` adds the
-    ``leak_hour`` column (see the template's header).
+    ``leak_hour`` column (see the template's header); ``firsts`` names the run's
+    first-assignment relation (:mod:`monitor.firsts`) to group from instead.
     """
     return render("assignments.sql.j2", wh.dialect, incremental=incremental, leak_hours=leak_hours,
-                  **source_context(src, Quoter(wh.dialect)))
+                  firsts=None if incremental else firsts, **source_context(src, Quoter(wh.dialect)))
 
 
 def _naive(t: datetime) -> datetime:
@@ -128,7 +131,7 @@ def pull_sources(
     ids = [e.id for e in experiments]
     window_start = _floor_hour(min(e.start for e in experiments))
     lookback = timedelta(hours=cfg.pull.lookback_hours)
-    for src in cfg.sources:
+    for position, src in enumerate(cfg.sources):
         marks = {} if full_refresh else state.watermarks(src.name)
         backtest = any(m > as_of for m in marks.values())
         incremental = bool(marks) and not backtest
@@ -139,7 +142,13 @@ def pull_sources(
             since = window_start
         if on_query:
             on_query(src.name)
-        sql = render_source_sql(src, wh, incremental=since > window_start)
+        # The first source groups the run's first-assignment relation where the session can hold
+        # one (monitor/firsts.py): on a full pull it is built here and the metric queries reuse it;
+        # on an incremental pull only if the metric queries will build it anyway, since then the
+        # counts of the new hours cost one small GROUP BY instead of the incremental query.
+        firsts = (first_relation(wh, src, ids, window_start, as_of)
+                  if position == 0 and (since == window_start or cfg.metrics) else None)
+        sql = render_source_sql(src, wh, incremental=since > window_start and firsts is None, firsts=firsts)
         raw = wh.query(
             f"assignments[{src.name}]",
             sql,

@@ -301,10 +301,12 @@ def _fast_events(cfg: Any, steps: list[datetime], metrics_every: timedelta, skip
     """Pull once, then evaluate every step on the counts as they stood then (see the module docstring)."""
     from monitor.checks import HourlyCounts, allocation_findings_from, design_findings, hour_index
     from monitor.cycle import load_registry, metric_findings
+    from monitor.firsts import relation as first_relation
     from monitor.pull import _naive, _tidy, render_source_sql
     from monitor.warehouse import open_warehouse
 
     wh = open_warehouse(cfg.warehouse)
+    wh.pin()  # DuckDB: one session, so each metric step's queries share one first-assignment relation
     try:
         exps, problems = load_registry(cfg, wh)
         live_sets = [[e for e in exps if e.live_at(t, cfg.registry.live_status)] for t in steps]
@@ -314,9 +316,13 @@ def _fast_events(cfg: Any, steps: list[datetime], metrics_every: timedelta, skip
             window_start = min(e.start for e in ever.values()).replace(minute=0, second=0, microsecond=0)
             params = {"window_start": _naive(window_start), "as_of": _naive(steps[-1]),
                       "since": _naive(window_start), "experiment_ids": list(ever)}
-            for src in cfg.sources:
-                raw = wh.query(f"assignments[{src.name}]", render_source_sql(src, wh, leak_hours=True), params,
-                               expanding=("experiment_ids",))
+            for position, src in enumerate(cfg.sources):
+                # the first source groups the first-assignment relation (DuckDB), which the metric
+                # steps then read as of their own time (its leak times make that exact)
+                firsts = (first_relation(wh, src, list(ever), window_start, steps[-1])
+                          if position == 0 and cfg.metrics and with_metrics else None)
+                raw = wh.query(f"assignments[{src.name}]", render_source_sql(src, wh, leak_hours=True, firsts=firsts),
+                               params, expanding=("experiment_ids",))
                 tables[src.name] = HourlyCounts.tables(_tidy(raw, src.segments or []))
         design = design_findings(problems)
         open_alerts: dict[str, dict[str, Any]] = {}

@@ -59,6 +59,7 @@ import pandas as pd
 
 from monitor.config import CheckConfig, Config, MetricConfig
 from monitor.findings import Finding
+from monitor.firsts import relation as first_relation
 from monitor.guardrails import metric_context, tidy_stat_frame
 from monitor.registry import Experiment, Phase
 from monitor.stats import effects as fx
@@ -109,9 +110,12 @@ def pull_spillover(cfg: Config, wh: Warehouse, experiments: Sequence[Experiment]
     if not exps or not cfg.metrics:
         return []
     window = timedelta(days=cfg.checks.spillover_window_days)
-    window_start = min(e.start for e in exps).replace(minute=0, second=0, microsecond=0)
+    # the window start of every other query of the run (all live experiments given), so
+    # they can share the run's first-assignment relation (monitor.firsts)
+    window_start = min(e.start for e in experiments).replace(minute=0, second=0, microsecond=0)
     src = cfg.sources[0]
     q = Quoter(wh.dialect)
+    firsts = first_relation(wh, src, [e.id for e in exps], window_start, as_of)
     out = []
     for m in cfg.metrics:
         if on_query:
@@ -126,7 +130,7 @@ def pull_spillover(cfg: Config, wh: Warehouse, experiments: Sequence[Experiment]
             if spec is not None and spec.filter_values is not None:
                 params[f"{key}_filter_values"] = list(spec.filter_values)
                 expanding.append(f"{key}_filter_values")
-        sql = render("spillover.sql.j2", wh.dialect, **metric_context(m, src, q))
+        sql = render("spillover.sql.j2", wh.dialect, **{**metric_context(m, src, q), "firsts": firsts})
         raw = wh.query(f"spillover[{m.name}]", sql, params, expanding=tuple(expanding))
         out.append(SpilloverPull(m, _tidy(raw)))
     return out

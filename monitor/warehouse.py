@@ -18,6 +18,15 @@ scans, size of the files they opened). Other engines report nothing cheaply
 (PostgreSQL would need ``EXPLAIN (ANALYZE, BUFFERS)``, a second execution), so
 there the fields stay None and only the rows returned are known.
 
+One connection per run (DuckDB): :meth:`Warehouse.pin` keeps a single
+connection for all the queries of a cycle, so they read one snapshot and the
+engine's buffer cache stays warm, and so the run's first-assignment relation
+(:mod:`monitor.firsts`) can live in that session's temp catalog, which is in
+the monitor's memory (spilled to ``spill_directory``), never in the warehouse
+file. Other engines keep one short connection per query; their sessions are
+read-only and cannot hold a temporary table, so there each template keeps its
+own CTE.
+
 :class:`SparkWarehouse` runs the same templates on Apache Spark SQL through a
 ``SparkSession`` (local mode or a cluster); :func:`open_warehouse` picks the
 backend from the ``warehouse`` config section.
@@ -28,7 +37,10 @@ from __future__ import annotations
 import importlib.util
 import json
 import logging
+import os
 import re
+import shutil
+import tempfile
 import time
 import warnings
 from collections.abc import Callable, Mapping
@@ -86,12 +98,25 @@ class Warehouse:
         Called as ``tracer(name, sql, params)`` before every query.
     timeout_seconds : float
         Statement timeout where the engine supports one (PostgreSQL).
+    memory_limit, threads, spill_directory : optional
+        DuckDB session settings (``memory_limit``, ``threads``, ``temp_directory``);
+        the spill directory defaults to a per-process folder under the system's
+        temporary directory, never beside the warehouse file.
     """
 
-    def __init__(self, url: str, *, tracer: Tracer | None = None, timeout_seconds: float = 600.0) -> None:
+    def __init__(self, url: str, *, tracer: Tracer | None = None, timeout_seconds: float = 600.0,
+                 memory_limit: str | None = None, threads: int | None = None,
+                 spill_directory: str | None = None) -> None:
         self.url = url
         self.tracer = tracer
         self.stats: list[QueryStats] = []
+        self._pinned: sa.Connection | None = None
+        self._temps: list[str] = []
+        self._temp_count = 0
+        self.first_relations: list[Any] = []
+        """Relations :mod:`monitor.firsts` built in this session."""
+        self._own_spill: str | None = None
+        self._duckdb_settings = {"memory_limit": memory_limit, "threads": threads, "temp_directory": spill_directory}
         try:
             parsed = make_url(url)
         except ArgumentError as exc:
@@ -144,8 +169,82 @@ class Warehouse:
                         cur.execute("SET enable_profiling = 'no_output'")
                     except Exception:
                         log.debug("duckdb: profiling not available; rows scanned will not be reported")
+                    self._duckdb_session(cur)
             finally:
                 cur.close()
+
+    def _duckdb_session(self, cur: Any) -> None:
+        """Memory limit, threads and spill folder of a DuckDB session (values are checked by the config)."""
+        settings = dict(self._duckdb_settings)
+        if settings["temp_directory"] is None:
+            if self._own_spill is None:
+                self._own_spill = os.path.join(tempfile.gettempdir(), f"expwatch-duckdb-{os.getpid()}-{id(self):x}")
+            settings["temp_directory"] = self._own_spill
+        for key, value in settings.items():
+            if value is None:
+                continue
+            literal = str(int(value)) if key == "threads" else "'" + str(value).replace("'", "''") + "'"
+            cur.execute(f"SET {key} = {literal}")
+
+    @property
+    def pinned(self) -> bool:
+        """True while one connection serves every query (:meth:`pin`)."""
+        return getattr(self, "_pinned", None) is not None
+
+    def pin(self) -> bool:
+        """Keep one connection for every later query until :meth:`dispose` (DuckDB
+        only; elsewhere a no-op). Returns whether a connection is pinned."""
+        if self.dialect.name != "duckdb":
+            return False
+        if self._pinned is None:
+            try:
+                self._pinned = self.engine.connect()
+            except DBAPIError as exc:
+                raise WarehouseError(f"warehouse {safe_url(self.url)} is unreachable: {_first_line(exc)}") from exc
+            except Exception as exc:  # duckdb.IOException and the like
+                raise WarehouseError(f"warehouse {safe_url(self.url)}: {_first_line(exc)}") from exc
+        return True
+
+    def create_temp(self, name: str, sql: str, params: Mapping[str, Any], *,
+                    expanding: tuple[str, ...] = ()) -> str:
+        """Materialise ``sql`` as a session temporary table (pinned DuckDB sessions
+        only: the temp catalog is in the monitor's memory, not in the warehouse) and
+        return the table's name. Recorded in :attr:`stats` as ``name``, with the
+        table's row count as its rows."""
+        if self._pinned is None:
+            raise WarehouseError(f"query {name}: temporary relations need a pinned session")
+        self._temp_count += 1
+        relation = f"expwatch_tmp_{self._temp_count}"
+        full = f"CREATE OR REPLACE TEMP TABLE {relation} AS\n{sql}"
+        stmt = sa.text(full)
+        if expanding:
+            stmt = stmt.bindparams(*(sa.bindparam(n, expanding=True) for n in expanding))
+        if self.tracer:
+            self.tracer(name, full, params)
+        t0 = time.perf_counter()
+        try:
+            result = self._pinned.execute(stmt, dict(params))
+            scanned, read_bytes = self._scan_counters(result)
+            # committed, the table is a regular (temp-catalog) table with its own statistics;
+            # left in the open transaction, every later scan of it reads transaction-local storage
+            self._pinned.commit()
+            rows = int(self._pinned.execute(sa.text(f"SELECT COUNT(*) FROM {relation}")).scalar() or 0)
+        except SQLAlchemyError as exc:
+            raise WarehouseError(f"query {name} failed on {self.dialect.name}: {_first_line(exc)}") from exc
+        except Exception as exc:
+            raise WarehouseError(f"warehouse {safe_url(self.url)}: query {name}: {_first_line(exc)}") from exc
+        if relation not in self._temps:
+            self._temps.append(relation)
+        seconds = time.perf_counter() - t0
+        self.stats.append(QueryStats(name, seconds, rows, scanned, read_bytes))
+        log.info("query %s: %d rows in %.2fs", name, rows, seconds)
+        return relation
+
+    def drop_temp(self, relation: str) -> None:
+        """Drop a temporary table made by :meth:`create_temp` (frees its memory)."""
+        if self._pinned is not None and relation in self._temps:
+            self._pinned.execute(sa.text(f"DROP TABLE IF EXISTS {relation}"))
+            self._temps.remove(relation)
 
     def query(self, name: str, sql: str, params: Mapping[str, Any], *, expanding: tuple[str, ...] = ()) -> pd.DataFrame:
         """Run one read-only query and return its rows as a DataFrame."""
@@ -156,11 +255,17 @@ class Warehouse:
             self.tracer(name, sql, params)
         t0 = time.perf_counter()
         try:
-            with self.engine.connect() as conn:
-                result = conn.execute(stmt, dict(params))
+            if self._pinned is not None:
+                result = self._pinned.execute(stmt, dict(params))
                 cols = list(result.keys())
                 frame = self._fetch_frame(result, cols)
                 scanned, read_bytes = self._scan_counters(result)
+            else:
+                with self.engine.connect() as conn:
+                    result = conn.execute(stmt, dict(params))
+                    cols = list(result.keys())
+                    frame = self._fetch_frame(result, cols)
+                    scanned, read_bytes = self._scan_counters(result)
         except DBAPIError as exc:
             if exc.connection_invalidated or isinstance(exc, sa.exc.OperationalError) and "connect" in str(exc).lower():
                 raise WarehouseError(f"warehouse {safe_url(self.url)} is unreachable: {_first_line(exc)}") from exc
@@ -203,7 +308,17 @@ class Warehouse:
         return list(self.query(name, wrapped, params, expanding=expanding).columns)
 
     def dispose(self) -> None:
+        if getattr(self, "_pinned", None) is not None:
+            try:
+                self._pinned.close()  # ends the session: its temporary tables go with it
+            except Exception:  # a broken connection is being thrown away anyway
+                log.debug("warehouse: closing the pinned connection failed", exc_info=True)
+            self._pinned = None
+            self._temps = []
+            self.first_relations = []
         self.engine.dispose()
+        if self._own_spill is not None:
+            shutil.rmtree(self._own_spill, ignore_errors=True)
 
 
 def _duckdb_counters(info: Mapping[str, Any]) -> tuple[int | None, int | None]:
@@ -457,4 +572,6 @@ def open_warehouse(settings: Any, *, tracer: Tracer | None = None) -> Warehouse:
     ``spark`` block, else a SQLAlchemy engine for its ``url``."""
     if getattr(settings, "spark", None) is not None:
         return SparkWarehouse(settings.spark, tracer=tracer, timeout_seconds=settings.query_timeout_seconds)
-    return Warehouse(settings.url, tracer=tracer, timeout_seconds=settings.query_timeout_seconds)
+    return Warehouse(settings.url, tracer=tracer, timeout_seconds=settings.query_timeout_seconds,
+                     memory_limit=getattr(settings, "memory_limit", None), threads=getattr(settings, "threads", None),
+                     spill_directory=getattr(settings, "spill_directory", None))

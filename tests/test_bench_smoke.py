@@ -29,11 +29,11 @@ def _figures(lines: list[str]) -> dict[str, tuple[float, float]]:
 
 @pytest.mark.slow
 def test_benchmark_script_prints_its_table(tmp_path):
-    lines = _bench("--kinds", "cold,warm,floor,stats,stats-looks,baseline", "--stats-experiments", "50",
+    lines = _bench("--kinds", "cold,warm,floor,floor-lean,stats,stats-looks,baseline", "--stats-experiments", "50",
                    "--dir", str(tmp_path))
     assert lines[0].startswith("size XS: 50,000 assignment rows")
     figures = _figures(lines)
-    assert set(figures) == {"cold", "warm", "floor", "stats", "stats-looks", "baseline"}
+    assert set(figures) == {"cold", "warm", "floor", "floor-lean", "stats", "stats-looks", "baseline"}
     assert all(sec > 0 and rss > 0 for sec, rss in figures.values())
     assert any(line.startswith("queries of the first cold run (s): registry") for line in lines)
     assert lines[-1].startswith("ratios: cold/floor")

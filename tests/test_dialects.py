@@ -77,6 +77,11 @@ class _StandIn:
     def probe(self, name, sql, params, *, expanding=()):
         return list(self.query(name, sql, params, expanding=expanding).columns)
 
+    pinned = False  # like every engine but DuckDB: no session temp tables, each template keeps its own CTE
+
+    def pin(self) -> bool:
+        return False
+
     def dispose(self) -> None:
         pass
 
@@ -176,7 +181,10 @@ def _cast_types_as_written(text: str, tree, dialect: str) -> list[str]:
 def test_every_query_parses_in_the_dialect(dialect, demo, duckdb_frames, tmp_path):
     calls, used = _rendered(dialect, demo, tmp_path, duckdb_frames)
     # every query template in sql/ was rendered (a new template must be reached by the cycle)
-    assert set(template_names()) <= used, f"templates never rendered: {set(template_names()) - used}"
+    # first_assignments.sql.j2 is DuckDB syntax, built only in pinned DuckDB sessions (monitor/firsts.py);
+    # the DuckDB tests run it (test_sql_*.py, the first-assignment-relation cases)
+    expected = set(template_names()) - {"first_assignments.sql.j2"}
+    assert expected <= used, f"templates never rendered: {expected - used}"
     assert len(calls) >= 8
     for name, sql, params, expanding in calls:
         try:

@@ -13,6 +13,7 @@ import pandas as pd
 import pytest
 
 from monitor.config import AssignmentColumns, SourceConfig
+from monitor.firsts import relation as first_relation
 from monitor.pull import _tidy, render_source_sql
 from monitor.warehouse import Warehouse
 
@@ -56,34 +57,57 @@ SRC = SourceConfig(name="assigned", table="exposure log",
                    segments=["device"])
 
 
-def _compare(wh: Warehouse, raw: pd.DataFrame) -> None:
-    window_start, as_of, since = T0 + timedelta(hours=2), T0 + timedelta(hours=60), T0 + timedelta(hours=20)
-    ids = ["alpha", "beta 'quoted' ü"]
-    sql = render_source_sql(SRC, wh)
-    assert "beta" not in sql and "2026" not in sql  # values travel as bind parameters only
+def _counts(wh: Warehouse, sql: str, window_start, as_of, since, ids) -> pd.DataFrame:
     got = wh.query("assignments", sql, {"window_start": window_start, "as_of": as_of, "since": since, "experiment_ids": ids},
                    expanding=("experiment_ids",))
     got = _tidy(got, ["device"])
     got["seg_0"] = got["segment"].map(lambda s: json.loads(s)["device"])
     got["hour"] = got["hour"].dt.tz_convert(None)
     key = ["experiment", "variant", "hour", "seg_0"]
+    return got.groupby(key, dropna=False)[["units", "leaked"]].sum().reset_index()
+
+
+def _compare(wh: Warehouse, raw: pd.DataFrame) -> None:
+    window_start, as_of, since = T0 + timedelta(hours=2), T0 + timedelta(hours=60), T0 + timedelta(hours=20)
+    ids = ["alpha", "beta 'quoted' ü"]
+    # a pinned DuckDB session groups the run's first-assignment relation instead (monitor/firsts.py),
+    # for full pulls (since = window_start) and for incremental ones (the incremental template's rules)
+    firsts = first_relation(wh, SRC, ids, window_start, as_of)
+    assert (firsts is not None) == wh.pinned
+    if firsts is not None:
+        since = window_start
+    sql = render_source_sql(SRC, wh, firsts=firsts)
+    assert "beta" not in sql and "2026" not in sql  # values travel as bind parameters only
+    g = _counts(wh, sql, window_start, as_of, since, ids)
+    key = ["experiment", "variant", "hour", "seg_0"]
     want = _brute_force(raw, window_start, as_of, since, ids)
-    g = got.groupby(key, dropna=False)[["units", "leaked"]].sum().reset_index()
     m = want.merge(g, on=key, how="outer", suffixes=("_want", "_got"), indicator=True)
     assert (m["_merge"] == "both").all(), m[m["_merge"] != "both"]
     assert (m["units_want"] == m["units_got"]).all()
     assert (m["leaked_want"] == m["leaked_got"]).all()
     assert want["leaked"].sum() > 0 and want["variant"].isna().any() and want["seg_0"].isna().any()
+    if firsts is not None:
+        later = window_start + timedelta(hours=30)
+        inc = _counts(wh, render_source_sql(SRC, wh, incremental=True), window_start, as_of, later, ids)
+        rel = _counts(wh, sql, window_start, as_of, later, ids)
+        pd.testing.assert_frame_equal(rel, inc)
+        assert len(inc) > 50 and inc["leaked"].sum() > 0
 
 
-def test_assignment_counts_match_brute_force_duckdb(tmp_path):
+@pytest.mark.parametrize("shared", [False, True], ids=["own-cte", "first-assignment-relation"])
+def test_assignment_counts_match_brute_force_duckdb(tmp_path, shared):
     raw = _raw_rows()
+    # the same time at two variants: the tie resolves to the smaller variant, in both paths
+    tie = raw[raw["arm"].notna()].iloc[[0]].assign(arm="zz-late-arm")
+    raw = pd.concat([raw, tie], ignore_index=True)
     path = tmp_path / "w.duckdb"
     con = duckdb.connect(str(path))
     con.register("raw", raw)
     con.execute('CREATE TABLE "exposure log" AS SELECT * FROM raw')
     con.close()
     wh = Warehouse(f"duckdb:///{path}")
+    if shared:
+        assert wh.pin()
     try:
         _compare(wh, raw)
     finally:

@@ -180,8 +180,8 @@ def raw():
     return _raw()
 
 
-@pytest.fixture(scope="module")
-def duck_wh(raw, tmp_path_factory):
+@pytest.fixture(scope="module", params=[False, True], ids=["own-cte", "first-assignment-relation"])
+def duck_wh(raw, tmp_path_factory, request):
     asg, ev = raw
     path = tmp_path_factory.mktemp("interference") / "w.duckdb"
     con = duckdb.connect(str(path))
@@ -191,6 +191,8 @@ def duck_wh(raw, tmp_path_factory):
     con.execute('CREATE TABLE "event log" AS SELECT * FROM e')
     con.close()
     wh = Warehouse(f"duckdb:///{path}")
+    if request.param:  # pinned: the queries read units from the run's first-assignment relation
+        assert wh.pin()
     yield wh
     wh.dispose()
 

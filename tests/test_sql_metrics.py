@@ -16,6 +16,7 @@ import pytest
 from conftest import load_frames_into_postgres
 
 from monitor.config import AssignmentColumns, MetricConfig, SourceConfig
+from monitor.firsts import relation as first_relation
 from monitor.guardrails import STAT_COLUMNS, metric_params, render_metric_sql
 from monitor.guardrails import tidy_stat_frame as _tidy
 from monitor.warehouse import Warehouse
@@ -128,7 +129,10 @@ def _brute_force(m: MetricConfig, asg: pd.DataFrame, ev: pd.DataFrame) -> pd.Dat
 
 
 def _compare(wh: Warehouse, asg: pd.DataFrame, ev: pd.DataFrame, m: MetricConfig) -> None:
-    sql = render_metric_sql(m, SRC, wh)
+    # a pinned DuckDB session reads units from the run's first-assignment relation (monitor/firsts.py)
+    firsts = first_relation(wh, SRC, IDS, WINDOW_START, AS_OF)
+    assert (firsts is not None) == wh.pinned
+    sql = render_metric_sql(m, SRC, wh, firsts=firsts)
     assert "beta" not in sql and "2026" not in sql and "'view'" not in sql  # values are bind parameters
     params, expanding = metric_params(m, WINDOW_START, AS_OF, IDS)
     got = _tidy(wh.query("metric", sql, params, expanding=expanding))
@@ -167,8 +171,8 @@ def raw():
     return asg, ev
 
 
-@pytest.fixture(scope="module")
-def duck_wh(raw, tmp_path_factory):
+@pytest.fixture(scope="module", params=[False, True], ids=["own-cte", "first-assignment-relation"])
+def duck_wh(raw, tmp_path_factory, request):
     asg, ev = raw
     path = tmp_path_factory.mktemp("metrics") / "w.duckdb"
     con = duckdb.connect(str(path))
@@ -178,6 +182,8 @@ def duck_wh(raw, tmp_path_factory):
     con.execute('CREATE TABLE "event log" AS SELECT * FROM e')
     con.close()
     wh = Warehouse(f"duckdb:///{path}")
+    if request.param:
+        assert wh.pin()
     yield wh
     wh.dispose()
 

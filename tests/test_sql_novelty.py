@@ -171,7 +171,8 @@ def raw():
     return _raw()
 
 
-def test_per_age_statistics_match_brute_force_duckdb(raw, tmp_path):
+@pytest.mark.parametrize("shared", [False, True], ids=["own-cte", "first-assignment-relation"])
+def test_per_age_statistics_match_brute_force_duckdb(raw, tmp_path, shared):
     asg, ev = raw
     path = tmp_path / "w.duckdb"
     con = duckdb.connect(str(path))
@@ -181,8 +182,11 @@ def test_per_age_statistics_match_brute_force_duckdb(raw, tmp_path):
     con.execute('CREATE TABLE "event log" AS SELECT * FROM e')
     con.close()
     wh = Warehouse(f"duckdb:///{path}")
+    if shared:  # the query reads units from the run's first-assignment relation, as of its own end
+        assert wh.pin()
     try:
         _compare(wh, asg, ev)
+        assert any(q.name.startswith("first-assignments[") for q in wh.stats) == shared
     finally:
         wh.dispose()
 

@@ -100,7 +100,7 @@ def build(path: Path, size: Size, *, threads: int = 2) -> None:
 
 
 CONFIG = """\
-warehouse: {{url: "{url}", query_timeout_seconds: 7200}}
+warehouse: {{url: "{url}", query_timeout_seconds: 7200{extra}}}
 state: {{url: "sqlite:///state.sqlite"}}
 registry: {{table: experiments}}
 assignments: {{table: assignments, segments: [platform]}}
@@ -115,8 +115,9 @@ metrics:
 """
 
 
-def write_config(directory: Path, url: str = "duckdb:///warehouse.duckdb") -> Path:
-    """The benchmark config: the SRM sources and one guardrail metric on ``page_views``."""
+def write_config(directory: Path, url: str = "duckdb:///warehouse.duckdb", *, memory_limit: str | None = None) -> Path:
+    """The benchmark config: the SRM sources and one guardrail metric on ``page_views``
+    (``memory_limit``: DuckDB's, the config key ``warehouse.memory_limit``)."""
     p = directory / "expwatch.yaml"
-    p.write_text(CONFIG.format(url=url))
+    p.write_text(CONFIG.format(url=url, extra=f', memory_limit: "{memory_limit}"' if memory_limit else ""))
     return p
