@@ -15,13 +15,12 @@ source, the window start and the time it was built to; it serves any query with
 the same source and window start, an ``as_of`` no later than its own and
 experiments among its own (the templates read it as of their ``:as_of`` through
 ``leak_ts``). Everywhere else :func:`relation` returns None and each template
-keeps its own CTE with the same rules; ``tests/test_firsts.py`` checks that the
-two give identical frames.
+keeps its own CTE with the same rules; the brute-force DuckDB tests
+(``tests/test_sql_*.py``, parameter ``first-assignment-relation``) run both ways.
 """
 
 from __future__ import annotations
 
-import logging
 from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import datetime, timezone
@@ -31,8 +30,6 @@ from monitor.templates import Quoter, render, source_context
 from monitor.warehouse import Warehouse
 
 __all__ = ["relation"]
-
-log = logging.getLogger("monitor")
 
 
 @dataclass(frozen=True)

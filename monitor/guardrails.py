@@ -217,11 +217,11 @@ def pull_metrics(cfg: Config, wh: Warehouse, experiments: Sequence[Experiment], 
     ids = [e.id for e in experiments]
     window_start = _floor_hour(min(e.start for e in experiments))
     src = cfg.sources[0]
+    firsts = first_relation(wh, src, ids, window_start, as_of)  # shared by every metric's query
     for m in cfg.metrics:
         if on_query:
             on_query(m.name)
         params, expanding = metric_params(m, window_start, as_of, ids)
-        firsts = first_relation(wh, src, ids, window_start, as_of)
         raw = wh.query(f"metric[{m.name}]", render_metric_sql(m, src, wh, firsts=firsts), params, expanding=expanding)
         out.append(MetricPull(m, tidy_stat_frame(raw)))
     return out

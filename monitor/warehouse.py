@@ -44,6 +44,7 @@ import tempfile
 import time
 import warnings
 from collections.abc import Callable, Mapping
+from contextlib import nullcontext
 from dataclasses import dataclass
 from typing import Any
 
@@ -104,13 +105,14 @@ class Warehouse:
         temporary directory, never beside the warehouse file.
     """
 
+    _pinned: sa.Connection | None = None  # the run's one connection (pin); never set on Spark
+
     def __init__(self, url: str, *, tracer: Tracer | None = None, timeout_seconds: float = 600.0,
                  memory_limit: str | None = None, threads: int | None = None,
                  spill_directory: str | None = None) -> None:
         self.url = url
         self.tracer = tracer
         self.stats: list[QueryStats] = []
-        self._pinned: sa.Connection | None = None
         self._temps: list[str] = []
         self._temp_count = 0
         self.first_relations: list[Any] = []
@@ -189,7 +191,7 @@ class Warehouse:
     @property
     def pinned(self) -> bool:
         """True while one connection serves every query (:meth:`pin`)."""
-        return getattr(self, "_pinned", None) is not None
+        return self._pinned is not None
 
     def pin(self) -> bool:
         """Keep one connection for every later query until :meth:`dispose` (DuckDB
@@ -233,8 +235,7 @@ class Warehouse:
             raise WarehouseError(f"query {name} failed on {self.dialect.name}: {_first_line(exc)}") from exc
         except Exception as exc:
             raise WarehouseError(f"warehouse {safe_url(self.url)}: query {name}: {_first_line(exc)}") from exc
-        if relation not in self._temps:
-            self._temps.append(relation)
+        self._temps.append(relation)
         seconds = time.perf_counter() - t0
         self.stats.append(QueryStats(name, seconds, rows, scanned, read_bytes))
         log.info("query %s: %d rows in %.2fs", name, rows, seconds)
@@ -255,17 +256,11 @@ class Warehouse:
             self.tracer(name, sql, params)
         t0 = time.perf_counter()
         try:
-            if self._pinned is not None:
-                result = self._pinned.execute(stmt, dict(params))
+            with nullcontext(self._pinned) if self._pinned is not None else self.engine.connect() as conn:
+                result = conn.execute(stmt, dict(params))
                 cols = list(result.keys())
                 frame = self._fetch_frame(result, cols)
                 scanned, read_bytes = self._scan_counters(result)
-            else:
-                with self.engine.connect() as conn:
-                    result = conn.execute(stmt, dict(params))
-                    cols = list(result.keys())
-                    frame = self._fetch_frame(result, cols)
-                    scanned, read_bytes = self._scan_counters(result)
         except DBAPIError as exc:
             if exc.connection_invalidated or isinstance(exc, sa.exc.OperationalError) and "connect" in str(exc).lower():
                 raise WarehouseError(f"warehouse {safe_url(self.url)} is unreachable: {_first_line(exc)}") from exc
@@ -308,7 +303,7 @@ class Warehouse:
         return list(self.query(name, wrapped, params, expanding=expanding).columns)
 
     def dispose(self) -> None:
-        if getattr(self, "_pinned", None) is not None:
+        if self._pinned is not None:
             try:
                 self._pinned.close()  # ends the session: its temporary tables go with it
             except Exception:  # a broken connection is being thrown away anyway
