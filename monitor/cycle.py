@@ -140,9 +140,9 @@ def run_cycle(
     else:
         state = StateStore(cfg.state.url or "", migrate=not dry_run)
     wh = open_warehouse(cfg.warehouse, tracer=tracer)
-    wh.pin()  # one session for the run's queries (DuckDB): one snapshot, one shared first-assignment relation
     notifying = notify and not dry_run and _wants_notifications(cfg)
     try:
+        wh.pin()  # one session for the run's queries (DuckDB): one snapshot, one shared first-assignment relation
         lock_cm = state.lock(wait_seconds=wait_seconds) if not dry_run else nullcontext()
         with lock_cm:
             if on_step:

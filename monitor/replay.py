@@ -306,8 +306,8 @@ def _fast_events(cfg: Any, steps: list[datetime], metrics_every: timedelta, skip
     from monitor.warehouse import open_warehouse
 
     wh = open_warehouse(cfg.warehouse)
-    wh.pin()  # DuckDB: one session, so each metric step's queries share one first-assignment relation
     try:
+        wh.pin()  # DuckDB: one session, so each metric step's queries share one first-assignment relation
         exps, problems = load_registry(cfg, wh)
         live_sets = [[e for e in exps if e.live_at(t, cfg.registry.live_status)] for t in steps]
         ever = {e.id: e for live in live_sets for e in live}
