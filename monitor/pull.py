@@ -143,11 +143,13 @@ def pull_sources(
         if on_query:
             on_query(src.name)
         # The first source groups the run's first-assignment relation where the session can hold
-        # one (monitor/firsts.py): on a full pull it is built here and the metric queries reuse it;
-        # on an incremental pull only if the metric queries will build it anyway, since then the
-        # counts of the new hours cost one small GROUP BY instead of the incremental query.
+        # one (monitor/firsts.py): on a full pull it is built here and the later queries reuse it;
+        # on an incremental pull only if the metric queries or the collision check (two or more
+        # experiments) will build it anyway, since then the counts of the new hours cost one
+        # small GROUP BY instead of the incremental query.
+        later = bool(cfg.metrics) or len(experiments) >= 2
         firsts = (first_relation(wh, src, ids, window_start, as_of)
-                  if position == 0 and (since == window_start or cfg.metrics) else None)
+                  if position == 0 and (since == window_start or later) else None)
         sql = render_source_sql(src, wh, incremental=since > window_start and firsts is None, firsts=firsts)
         raw = wh.query(
             f"assignments[{src.name}]",

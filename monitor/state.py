@@ -369,16 +369,15 @@ class StateStore:
         for chunk in _chunks(list(experiments), 500):
             conn.execute(sa.delete(counts).where(counts.c.source == source, counts.c.experiment.in_(chunk), counts.c.hour >= since))
             conn.execute(sa.delete(watermarks).where(watermarks.c.source == source, watermarks.c.experiment.in_(chunk)))
-        if len(frame):
-            hours = _db_times(frame["hour"], conn.dialect)
-            records = list(zip(
-                [source] * len(frame), frame["experiment"].tolist(),
-                frame["variant"].astype(object).where(frame["variant"].notna(), None).tolist(), hours,
-                frame["segment"].tolist(), frame["units"].astype("int64").tolist(), frame["leaked"].astype("int64").tolist(),
-            ))
-            sql = _insert_sql(conn.dialect, counts.name, ["source", "experiment", "variant", "hour", "segment", "units", "leaked"])
-            for chunk in _chunks(records, 20000):
-                conn.exec_driver_sql(sql, chunk)
+        sql = _insert_sql(conn.dialect, counts.name, ["source", "experiment", "variant", "hour", "segment", "units", "leaked"])
+        for lo in range(0, len(frame), 20000):  # rows as Python tuples one slice at a time (peak memory)
+            part = frame.iloc[lo:lo + 20000]
+            conn.exec_driver_sql(sql, list(zip(
+                [source] * len(part), part["experiment"].tolist(),
+                part["variant"].astype(object).where(part["variant"].notna(), None).tolist(),
+                _db_times(part["hour"], conn.dialect), part["segment"].tolist(),
+                part["units"].astype("int64").tolist(), part["leaked"].astype("int64").tolist(),
+            )))
         if experiments:
             conn.execute(sa.insert(watermarks), [{"source": source, "experiment": e, "pulled_to": pulled_to} for e in experiments])
 

@@ -97,6 +97,31 @@ def test_incremental_pull_equals_full_refresh(setup, tmp_path):
     assert a == b
 
 
+def test_incremental_template_pull_equals_full_refresh(setup, tmp_path):
+    """With one live experiment and no metric nothing later reads the first-assignment
+    relation, so an incremental pull runs the incremental template instead; with two the
+    collision check builds the relation anyway and the pull groups it. Both paths give
+    the full refresh's findings."""
+    def queries(r):
+        return [k for k in r.query_seconds if k != "registry"]
+
+    two = run_cycle(setup, as_of=START + timedelta(hours=100))
+    assert queries(run_cycle(setup, as_of=START + timedelta(hours=170)))[:2] == [
+        "first-assignments[assigned]", "assignments[assigned]"]
+    con = duckdb.connect(str(tmp_path / "w.duckdb"))
+    con.execute("DELETE FROM experiments WHERE experiment_id = 'steady'")
+    con.close()
+    inc = run_cycle(setup, as_of=START + timedelta(hours=240))
+    assert two.recorded and inc.sources[0].since == START + timedelta(hours=170 - 48)
+    assert queries(inc) == ["assignments[assigned]"]
+    full = run_cycle(setup.model_copy(update={"state": setup.state.model_copy(update={"url": f"sqlite:///{tmp_path / 'other.sqlite'}"})}),
+                     as_of=START + timedelta(hours=240))
+    assert queries(full) == ["first-assignments[assigned]", "assignments[assigned]"]
+    a = {(f.key): json.dumps(f.to_json()["statistics"], sort_keys=True) for f in inc.findings}
+    b = {(f.key): json.dumps(f.to_json()["statistics"], sort_keys=True) for f in full.findings}
+    assert a == b and any(f.experiment == "tilted" and f.check == "srm" for f in inc.findings)
+
+
 def test_late_rows_inside_lookback_are_picked_up(tmp_path):
     make_warehouse(tmp_path / "w.duckdb", skew_from_hour=None)
     (tmp_path / "c.yaml").write_text(CONFIG)
