@@ -266,16 +266,21 @@ def _floor(directory: Path, pg_url: str | None) -> float:
 
 def _duck(directory: Path):
     """A read-only DuckDB connection to the bench warehouse with the runs' memory_limit (if
-    any) and a spill folder of its own, as expwatch's sessions have (monitor/warehouse.py)."""
+    any) and a spill folder of its own, as expwatch's sessions have (monitor/warehouse.py);
+    the worker process removes the folder when it exits."""
+    import atexit
+
     import duckdb
 
     from monitor.config import load_config
 
     limit = load_config(directory / "expwatch.yaml").warehouse.memory_limit
+    spill = tempfile.mkdtemp(prefix="expwatch-floor-")
+    atexit.register(shutil.rmtree, spill, ignore_errors=True)
     con = duckdb.connect(str(directory / "warehouse.duckdb"), read_only=True)
     if limit:
         con.execute(f"SET memory_limit = '{limit}'")
-    con.execute(f"SET temp_directory = '{tempfile.mkdtemp(prefix='expwatch-floor-')}'")
+    con.execute(f"SET temp_directory = '{spill}'")
     return con
 
 
