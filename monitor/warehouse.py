@@ -232,7 +232,7 @@ class Warehouse:
             self._pinned.commit()
             rows = int(self._pinned.execute(sa.text(f"SELECT COUNT(*) FROM {relation}")).scalar() or 0)
         except SQLAlchemyError as exc:
-            raise WarehouseError(f"query {name} failed on {self.dialect.name}: {_first_line(exc)}") from exc
+            raise WarehouseError(f"query {name} failed on {self.dialect.name}: {_first_line(exc)}{self._memory_hint(exc)}") from exc
         except Exception as exc:
             raise WarehouseError(f"warehouse {safe_url(self.url)}: query {name}: {_first_line(exc)}") from exc
         self._temps.append(relation)
@@ -240,6 +240,15 @@ class Warehouse:
         self.stats.append(QueryStats(name, seconds, rows, scanned, read_bytes))
         log.info("query %s: %d rows in %.2fs", name, rows, seconds)
         return relation
+
+    def _memory_hint(self, exc: BaseException) -> str:
+        """What to change when DuckDB ran out of memory (its own message names SET commands
+        the user cannot issue to the monitor)."""
+        if self.dialect.name != "duckdb" or "Out of Memory" not in str(exc):
+            return ""
+        limit = self._duckdb_settings.get("memory_limit")
+        now = f" (now {limit})" if limit else ""
+        return f"; raise warehouse.memory_limit{now} or lower warehouse.threads in the config"
 
     def drop_temp(self, relation: str) -> None:
         """Drop a temporary table made by :meth:`create_temp` (frees its memory)."""
@@ -264,9 +273,9 @@ class Warehouse:
         except DBAPIError as exc:
             if exc.connection_invalidated or isinstance(exc, sa.exc.OperationalError) and "connect" in str(exc).lower():
                 raise WarehouseError(f"warehouse {safe_url(self.url)} is unreachable: {_first_line(exc)}") from exc
-            raise WarehouseError(f"query {name} failed on {self.dialect.name}: {_first_line(exc)}") from exc
+            raise WarehouseError(f"query {name} failed on {self.dialect.name}: {_first_line(exc)}{self._memory_hint(exc)}") from exc
         except SQLAlchemyError as exc:
-            raise WarehouseError(f"query {name} failed on {self.dialect.name}: {_first_line(exc)}") from exc
+            raise WarehouseError(f"query {name} failed on {self.dialect.name}: {_first_line(exc)}{self._memory_hint(exc)}") from exc
         except Exception as exc:  # driver errors that are not DBAPI errors (e.g. duckdb.IOException)
             raise WarehouseError(f"warehouse {safe_url(self.url)}: query {name}: {_first_line(exc)}") from exc
         seconds = time.perf_counter() - t0
