@@ -56,7 +56,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from datetime import UTC, datetime
+from datetime import datetime
 from typing import Any
 
 import numpy as np
@@ -69,6 +69,7 @@ from monitor.registry import Experiment
 from monitor.stats import effects as fx
 from monitor.stats.interference import independence_chi2, interaction_wald
 from monitor.templates import Quoter, render
+from monitor.templates import naive_utc as _naive
 from monitor.warehouse import Warehouse
 
 __all__ = ["CollisionPull", "collision_findings", "collision_params", "pull_collisions"]
@@ -89,10 +90,6 @@ class CollisionPull:
 
     crosstab: pd.DataFrame
     metrics: tuple[tuple[MetricConfig, pd.DataFrame], ...]
-
-
-def _naive(t: datetime) -> datetime:
-    return t if t.tzinfo is None else t.astimezone(UTC).replace(tzinfo=None)
 
 
 def collision_params(experiments: Sequence[Experiment], as_of: datetime) -> tuple[dict[str, Any], int]:

@@ -23,10 +23,11 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
-from datetime import datetime, timezone
+from datetime import datetime
 
 from monitor.config import SourceConfig
 from monitor.templates import Quoter, render, source_context
+from monitor.templates import naive_utc as _naive
 from monitor.warehouse import Warehouse
 
 __all__ = ["relation"]
@@ -39,10 +40,6 @@ class _Built:
     window_start: datetime
     as_of: datetime
     experiments: frozenset[str]
-
-
-def _naive(t: datetime) -> datetime:
-    return t if t.tzinfo is None else t.astimezone(timezone.utc).replace(tzinfo=None)
 
 
 def relation(wh: Warehouse, src: SourceConfig, experiment_ids: Sequence[str], window_start: datetime,

@@ -33,7 +33,7 @@ from __future__ import annotations
 import logging
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from datetime import UTC, datetime, timedelta
+from datetime import datetime, timedelta
 from typing import Any
 
 import numpy as np
@@ -51,6 +51,7 @@ from monitor.firsts import relation as first_relation
 from monitor.registry import Experiment
 from monitor.stats import effects as fx
 from monitor.templates import Quoter, render
+from monitor.templates import naive_utc as _naive
 from monitor.warehouse import Warehouse
 
 __all__ = [
@@ -127,11 +128,6 @@ def render_metric_sql(metric: MetricConfig, assignments: SourceConfig, wh: Wareh
     ctx = metric_context(metric, assignments, Quoter(wh.dialect))
     ctx["firsts"] = firsts
     return render("metrics.sql.j2", wh.dialect, **ctx)
-
-
-def _naive(t: datetime) -> datetime:
-    """Naive UTC (a naive input is taken to be UTC already)."""
-    return t if t.tzinfo is None else t.astimezone(UTC).replace(tzinfo=None)
 
 
 def _floor_hour(t: datetime) -> datetime:

@@ -63,6 +63,7 @@ from monitor.registry import Experiment
 from monitor.stats import effects as fx
 from monitor.stats import novelty as nv
 from monitor.templates import Quoter, render
+from monitor.templates import naive_utc as _naive
 from monitor.warehouse import Warehouse
 
 __all__ = ["NoveltyPull", "novelty_findings", "novelty_metrics", "pull_novelty", "render_novelty_sql"]
@@ -99,10 +100,6 @@ def window(e: Experiment, as_of: datetime, every: int) -> tuple[datetime, dateti
     since = _ceil_day(ph.start)
     days = max((_floor_day(as_of) - since) // _DAY, 0)
     return since, since + _DAY * ((days // every) * every)
-
-
-def _naive(t: datetime) -> datetime:
-    return t.astimezone(UTC).replace(tzinfo=None)
 
 
 def _floor_hour(t: datetime) -> datetime:

@@ -27,7 +27,7 @@ import json
 import logging
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from datetime import datetime, timedelta, timezone
+from datetime import datetime, timedelta
 
 import pandas as pd
 
@@ -36,6 +36,7 @@ from monitor.firsts import relation as first_relation
 from monitor.registry import Experiment
 from monitor.state import StateStore
 from monitor.templates import Quoter, render, source_context
+from monitor.templates import naive_utc as _naive
 from monitor.warehouse import Warehouse
 
 __all__ = ["PulledSource", "pull_sources", "render_source_sql"]
@@ -70,10 +71,6 @@ def render_source_sql(src: SourceConfig, wh: Warehouse, *, incremental: bool = F
     """
     return render("assignments.sql.j2", wh.dialect, incremental=incremental, leak_hours=leak_hours,
                   firsts=None if incremental else firsts, **source_context(src, Quoter(wh.dialect)))
-
-
-def _naive(t: datetime) -> datetime:
-    return t.astimezone(timezone.utc).replace(tzinfo=None)
 
 
 def _floor_hour(t: datetime) -> datetime:

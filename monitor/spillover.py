@@ -51,7 +51,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from datetime import UTC, datetime, timedelta
+from datetime import datetime, timedelta
 from typing import Any
 
 import numpy as np
@@ -65,6 +65,7 @@ from monitor.registry import Experiment, Phase
 from monitor.stats import effects as fx
 from monitor.stats.interference import effect_trend, ratio_change
 from monitor.templates import Quoter, render
+from monitor.templates import naive_utc as _naive
 from monitor.warehouse import Warehouse
 
 __all__ = ["SUM_COLUMNS", "SpilloverPull", "pull_spillover", "ramped", "spillover_findings"]
@@ -82,10 +83,6 @@ class SpilloverPull:
 
     metric: MetricConfig
     frame: pd.DataFrame
-
-
-def _naive(t: datetime) -> datetime:
-    return t if t.tzinfo is None else t.astimezone(UTC).replace(tzinfo=None)
 
 
 def _share(e: Experiment, ph: Phase) -> float:

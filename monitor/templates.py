@@ -15,6 +15,7 @@ checkout they are read from the top-level ``sql/`` folder.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from datetime import UTC, datetime
 from importlib import resources
 from pathlib import Path
 from typing import Any
@@ -26,7 +27,14 @@ from sqlalchemy.sql import compiler
 from monitor.config import RegistryConfig, SourceConfig
 from monitor.errors import ConfigError
 
-__all__ = ["OFFLINE_DIALECTS", "Quoter", "offline_dialect", "registry_context", "render", "source_context", "template_names"]
+__all__ = ["OFFLINE_DIALECTS", "Quoter", "naive_utc", "offline_dialect", "registry_context", "render", "source_context",
+           "template_names"]
+
+
+def naive_utc(t: datetime) -> datetime:
+    """A time as a bind parameter for the templates' naive-UTC timestamp columns (a naive
+    input is taken to be UTC already)."""
+    return t if t.tzinfo is None else t.astimezone(UTC).replace(tzinfo=None)
 
 
 def _template_dir() -> Path:

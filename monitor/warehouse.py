@@ -217,12 +217,7 @@ class Warehouse:
             raise WarehouseError(f"query {name}: temporary relations need a pinned session")
         self._temp_count += 1
         relation = f"expwatch_tmp_{self._temp_count}"
-        full = f"CREATE OR REPLACE TEMP TABLE {relation} AS\n{sql}"
-        stmt = sa.text(full)
-        if expanding:
-            stmt = stmt.bindparams(*(sa.bindparam(n, expanding=True) for n in expanding))
-        if self.tracer:
-            self.tracer(name, full, params)
+        stmt = self._statement(name, f"CREATE OR REPLACE TEMP TABLE {relation} AS\n{sql}", params, expanding)
         t0 = time.perf_counter()
         try:
             result = self._pinned.execute(stmt, dict(params))
@@ -241,6 +236,15 @@ class Warehouse:
         log.info("query %s: %d rows in %.2fs", name, rows, seconds)
         return relation
 
+    def _statement(self, name: str, sql: str, params: Mapping[str, Any], expanding: tuple[str, ...]) -> sa.TextClause:
+        """``sql`` with its expanding (IN-list) binds, shown to the tracer as it will run."""
+        stmt = sa.text(sql)
+        if expanding:
+            stmt = stmt.bindparams(*(sa.bindparam(n, expanding=True) for n in expanding))
+        if self.tracer:
+            self.tracer(name, sql, params)
+        return stmt
+
     def _memory_hint(self, exc: BaseException) -> str:
         """What to change when DuckDB ran out of memory (its own message names SET commands
         the user cannot issue to the monitor)."""
@@ -258,11 +262,7 @@ class Warehouse:
 
     def query(self, name: str, sql: str, params: Mapping[str, Any], *, expanding: tuple[str, ...] = ()) -> pd.DataFrame:
         """Run one read-only query and return its rows as a DataFrame."""
-        stmt = sa.text(sql)
-        if expanding:
-            stmt = stmt.bindparams(*(sa.bindparam(n, expanding=True) for n in expanding))
-        if self.tracer:
-            self.tracer(name, sql, params)
+        stmt = self._statement(name, sql, params, expanding)
         t0 = time.perf_counter()
         try:
             with nullcontext(self._pinned) if self._pinned is not None else self.engine.connect() as conn:
