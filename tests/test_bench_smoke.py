@@ -47,3 +47,19 @@ def test_benchmark_script_runs_against_postgres(tmp_path, pg_url):
     assert "engine postgres" in lines[0] and "loaded into PostgreSQL with COPY" in lines[0]
     assert set(_figures(lines)) == {"cold", "floor"}
     assert lines[-2].startswith("ratios: cold/floor")
+
+
+@pytest.mark.skipif(not Path("/proc/self/status").exists(), reason="needs Linux /proc")
+def test_worker_peak_memory_is_its_own_not_the_drivers(tmp_path):
+    """A forked child's ``ru_maxrss`` starts from the parent's peak; the bench must not report it.
+
+    The driver here holds 1 GiB; a stats worker on 10 experiments needs a small fraction of that."""
+    from tests.bench import run
+
+    ballast = bytearray(1 << 30)
+    ballast[::4096] = b"\x01" * len(range(0, 1 << 30, 4096))  # touch every page, so it is resident
+    seconds, rss, _ = run._measure("stats", tmp_path, None, 10)
+    assert seconds > 0
+    assert 10 < rss < 600, rss
+    assert run._hwm() > 1024  # the driver's own peak is above the ballast
+    del ballast

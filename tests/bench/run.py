@@ -376,20 +376,62 @@ class WorkerFailed(Exception):
         self.rss_mib = rss_mib
 
 
+def _hwm(pid: int | str = "self") -> float | None:
+    """Peak resident memory (``VmHWM``, MiB) of a process's own address space, or None.
+
+    Not ``ru_maxrss``: the kernel carries a forked child's pre-``exec`` peak, which is the
+    parent's, into the child's ``ru_maxrss``, so a driver that built a warehouse or loaded
+    PostgreSQL in-process would show its own peak for every worker. ``VmHWM`` starts afresh
+    with the address space ``exec`` creates."""
+    try:
+        for line in Path(f"/proc/{pid}/status").read_text().splitlines():
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 1024
+    except OSError:
+        pass
+    return None
+
+
 def _measure(kind: str, directory: Path, pg_url: str | None, experiments: int) -> tuple[float, float, dict]:
-    """(seconds, peak RSS in MiB, per-query seconds) of one worker subprocess."""
+    """(seconds, peak RSS in MiB, per-query seconds) of one worker subprocess.
+
+    The worker reports its own ``VmHWM`` when it finishes; while it runs the driver polls it
+    too (once the worker has exec'd), so a worker killed for memory still has a peak."""
+    import threading
+
     cmd = [sys.executable, "-m", "tests.bench.run", "--worker", kind, "--dir", str(directory),
            "--stats-experiments", str(experiments)]
     if pg_url:
         cmd += ["--engine", "postgres", "--pg-url", pg_url]
     proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, cwd=Path(__file__).resolve().parents[2])
+    seen = [0.0]
+    done = threading.Event()
+
+    def poll() -> None:
+        while not done.wait(0.1):
+            try:
+                if b"--worker" not in Path(f"/proc/{proc.pid}/cmdline").read_bytes():
+                    continue  # not exec'd yet: the address space is still the driver's
+            except OSError:
+                return
+            seen[0] = max(seen[0], _hwm(proc.pid) or 0.0)
+
+    watcher = threading.Thread(target=poll, daemon=True)
+    watcher.start()
     out = proc.stdout.read() if proc.stdout else b""
     _, status, rusage = os.wait4(proc.pid, 0)
+    done.set()
+    watcher.join()
+    # without /proc (not Linux) only ru_maxrss is left, which may include the driver's peak
+    fallback = rusage.ru_maxrss / 1024 if not seen[0] else 0.0
     code = os.waitstatus_to_exitcode(status)
+    proc.returncode = code  # reaped by wait4, not by Popen
+    if proc.stdout:
+        proc.stdout.close()
     if code != 0:
-        raise WorkerFailed(f"exit code {code}" if code > 0 else f"killed by signal {-code}", rusage.ru_maxrss / 1024)
+        raise WorkerFailed(f"exit code {code}" if code > 0 else f"killed by signal {-code}", seen[0] or fallback)
     data = json.loads(out)
-    return float(data["seconds"]), rusage.ru_maxrss / 1024, data["queries"]
+    return float(data["seconds"]), max(seen[0], data.get("rss_mib") or 0.0) or fallback, data["queries"]
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -411,7 +453,7 @@ def main(argv: list[str] | None = None) -> int:
     pg_url = args.pg_url if args.engine == "postgres" else None
     if args.worker:
         seconds, queries = _worker(args.worker, args.dir, pg_url, args.stats_experiments)
-        sys.stdout.write(json.dumps({"seconds": seconds, "queries": queries}))
+        sys.stdout.write(json.dumps({"seconds": seconds, "queries": queries, "rss_mib": _hwm()}))
         return 0
     size = SIZES[args.size]
     directory = args.dir or Path(tempfile.mkdtemp(prefix=f"expwatch-bench-{size.name}-"))
