@@ -423,7 +423,7 @@ def _measure(kind: str, directory: Path, pg_url: str | None, experiments: int) -
     done.set()
     watcher.join()
     # without /proc (not Linux) only ru_maxrss is left, which may include the driver's peak
-    fallback = rusage.ru_maxrss / 1024 if not seen[0] else 0.0
+    fallback = rusage.ru_maxrss / 1024
     code = os.waitstatus_to_exitcode(status)
     proc.returncode = code  # reaped by wait4, not by Popen
     if proc.stdout:
