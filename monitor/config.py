@@ -76,6 +76,9 @@ class WarehouseConfig(_Model):
     """DuckDB only: worker threads (default: one per core)."""
     spill_directory: str | None = None
     """DuckDB only: where it spills; default a per-run folder under the system temp directory."""
+    work_mem: Annotated[str, Field(pattern=r"^\s*\d+\s*(kB|MB|GB|TB)\s*$")] | None = None
+    """PostgreSQL only: ``work_mem`` of the monitor's sessions (e.g. "256MB"), the memory each sort or hash
+    of a query may use before it spills to temporary files. Default: the server's (4MB unless changed)."""
 
     @model_validator(mode="after")
     def _one_engine(self) -> WarehouseConfig:
@@ -84,6 +87,8 @@ class WarehouseConfig(_Model):
         duck_only = [k for k in ("memory_limit", "threads", "spill_directory") if getattr(self, k) is not None]
         if duck_only and not (self.url or "").startswith("duckdb:"):
             raise ValueError(f"{', '.join(duck_only)}: DuckDB settings, but the warehouse is not a duckdb: URL")
+        if self.work_mem is not None and not (self.url or "").startswith("postgresql"):
+            raise ValueError("work_mem: a PostgreSQL setting, but the warehouse is not a postgresql URL")
         return self
 
 

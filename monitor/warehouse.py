@@ -103,14 +103,17 @@ class Warehouse:
         DuckDB session settings (``memory_limit``, ``threads``, ``temp_directory``);
         the spill directory defaults to a per-process folder under the system's
         temporary directory, never beside the warehouse file.
+    work_mem : optional
+        PostgreSQL session setting ``work_mem`` (memory per sort or hash before it spills).
     """
 
     _pinned: sa.Connection | None = None  # the run's one connection (pin); never set on Spark
 
     def __init__(self, url: str, *, tracer: Tracer | None = None, timeout_seconds: float = 600.0,
                  memory_limit: str | None = None, threads: int | None = None,
-                 spill_directory: str | None = None) -> None:
+                 spill_directory: str | None = None, work_mem: str | None = None) -> None:
         self.url = url
+        self._work_mem = work_mem
         self.tracer = tracer
         self.stats: list[QueryStats] = []
         self._temps: list[str] = []
@@ -161,6 +164,8 @@ class Warehouse:
                     # handful of rows, and the nested loops it then picks turned the novelty query on
                     # the demo from 13 s into more than 10 minutes; hash and merge joins stay available.
                     cur.execute("SET enable_nestloop = off")
+                    if self._work_mem is not None:  # checked by the config: digits and a unit
+                        cur.execute("SET work_mem = '" + self._work_mem.strip().replace("'", "''") + "'")
                     dbapi_conn.commit()
                 elif backend == "duckdb":
                     try:
@@ -578,4 +583,5 @@ def open_warehouse(settings: Any, *, tracer: Tracer | None = None) -> Warehouse:
         return SparkWarehouse(settings.spark, tracer=tracer, timeout_seconds=settings.query_timeout_seconds)
     return Warehouse(settings.url, tracer=tracer, timeout_seconds=settings.query_timeout_seconds,
                      memory_limit=getattr(settings, "memory_limit", None), threads=getattr(settings, "threads", None),
-                     spill_directory=getattr(settings, "spill_directory", None))
+                     spill_directory=getattr(settings, "spill_directory", None),
+                     work_mem=getattr(settings, "work_mem", None))
