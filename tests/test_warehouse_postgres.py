@@ -6,6 +6,7 @@ config key warehouse.work_mem reaches every session."""
 from __future__ import annotations
 
 import pytest
+import sqlalchemy as sa
 
 from monitor.config import load_config
 from monitor.errors import ConfigError, WarehouseError
@@ -29,7 +30,13 @@ def test_session_defaults(tmp_path, pg_url):
     try:
         row = _settings(wh)
         assert (row["ro"], row["tz"], row["timeout"], row["nl"]) == ("on", "UTC", "90s", "off")
-        assert row["work_mem"] == "4MB"  # the server's default, untouched without the key
+        plain = sa.create_engine(pg_url, poolclass=sa.pool.NullPool)  # a session not opened by expwatch
+        try:
+            with plain.connect() as c:
+                server_default = c.execute(sa.text("SHOW work_mem")).scalar()
+        finally:
+            plain.dispose()
+        assert row["work_mem"] == server_default  # untouched without the key
         with pytest.raises(WarehouseError, match="read-only transaction"):
             wh.query("write", "CREATE TABLE expwatch_must_not_exist AS SELECT 1 AS x", {})
     finally:
