@@ -25,6 +25,7 @@ def _settings(wh):
                     "current_setting('statement_timeout') AS timeout, current_setting('enable_nestloop') AS nl", {}).iloc[0]
 
 
+@pytest.mark.postgres
 def test_session_defaults(tmp_path, pg_url):
     wh = open_warehouse(_config(tmp_path, pg_url, ", query_timeout_seconds: 90").warehouse)
     try:
@@ -43,6 +44,7 @@ def test_session_defaults(tmp_path, pg_url):
         wh.dispose()
 
 
+@pytest.mark.postgres
 def test_work_mem_reaches_every_session(tmp_path, pg_url):
     wh = open_warehouse(_config(tmp_path, pg_url, ', work_mem: "256MB"').warehouse)
     try:
