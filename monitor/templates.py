@@ -8,16 +8,19 @@ the caller did not give fails loudly. Two rules keep them safe:
 * every value (times, experiment ids) is a bind parameter (``:as_of``), never
   text pasted into the SQL.
 
-The templates ship inside the installed package (``monitor/sql``); in a source
-checkout they are read from the top-level ``sql/`` folder.
+The templates ship inside the installed package as ``monitor/sql`` (a regular
+package, so that :func:`importlib.resources.files` gives one folder in every
+kind of install); in a source checkout that package is the top-level ``sql/``
+folder (``pyproject.toml`` maps it).
 """
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from importlib import resources
-from pathlib import Path
+from importlib.resources.abc import Traversable
 from typing import Any
 
 import jinja2
@@ -37,19 +40,32 @@ def naive_utc(t: datetime) -> datetime:
     return t if t.tzinfo is None else t.astimezone(UTC).replace(tzinfo=None)
 
 
-def _template_dir() -> Path:
-    try:
-        pkg = resources.files("monitor.sql")
-        path = Path(str(pkg))
-        if (path / "assignments.sql.j2").is_file():
-            return path
-    except ModuleNotFoundError:
-        pass
-    return Path(__file__).resolve().parent.parent / "sql"
+class _PackageLoader(jinja2.BaseLoader):
+    """Load templates from a package's resources (:func:`importlib.resources.files`).
+
+    Works wherever the package is: a wheel in site-packages, an editable install
+    and a zip file, because it only reads resources through their ``Traversable``
+    interface and never turns one into a file-system path.
+    """
+
+    def __init__(self, package: str) -> None:
+        self.package = package
+
+    def _root(self) -> Traversable:
+        return resources.files(self.package)
+
+    def get_source(self, environment: jinja2.Environment, template: str) -> tuple[str, None, Callable[[], bool]]:
+        resource = self._root().joinpath(template)
+        if not resource.is_file():
+            raise jinja2.TemplateNotFound(template)
+        return resource.read_text(encoding="utf-8"), None, lambda: True
+
+    def list_templates(self) -> list[str]:
+        return sorted(r.name for r in self._root().iterdir() if r.is_file() and r.name.endswith(".j2"))
 
 
 _ENV = jinja2.Environment(
-    loader=jinja2.FileSystemLoader(str(_template_dir())),
+    loader=_PackageLoader("monitor.sql"),
     undefined=jinja2.StrictUndefined,
     autoescape=False,
     trim_blocks=True,

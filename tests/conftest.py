@@ -3,10 +3,16 @@ loopback, and a non-UTC local time zone for every test.
 
 PostgreSQL tests skip when no server answers on 127.0.0.1:5432, unless
 EXPWATCH_REQUIRE_POSTGRES=1 (CI sets it), which turns the skip into a failure.
+
+The suite tests the installed package: run it as ``.venv/bin/pytest`` (the README's
+command), which does not put the checkout on ``sys.path``. The report header names
+the ``monitor`` under test; with EXPWATCH_REQUIRE_INSTALLED=1 (CI sets it) the run
+stops at once if that is the checkout's own ``monitor/`` folder.
 """
 
 from __future__ import annotations
 
+import importlib
 import io
 import os
 import time
@@ -21,6 +27,18 @@ import pytest
 # silently uses local time shows up.
 os.environ["TZ"] = "Europe/Berlin"
 time.tzset()
+
+ROOT = Path(__file__).resolve().parent.parent
+UNDER_TEST = Path(importlib.import_module("monitor").__file__).resolve().parent
+
+if os.environ.get("EXPWATCH_REQUIRE_INSTALLED") == "1" and UNDER_TEST == ROOT / "monitor":
+    pytest.exit(f"the tests imported the checkout's {UNDER_TEST}, not the installed package: run them as "
+                "'.venv/bin/pytest' after 'pip install .[test]' (EXPWATCH_REQUIRE_INSTALLED=1)", returncode=4)
+
+
+def pytest_report_header(config: pytest.Config) -> str:
+    return f"expwatch under test: {UNDER_TEST}"
+
 
 PG_DSN = os.environ.get("EXPWATCH_TEST_PG", "postgresql+psycopg://postgres@127.0.0.1:5432/test")
 

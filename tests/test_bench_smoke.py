@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import subprocess
 import sys
 from pathlib import Path
@@ -12,8 +13,10 @@ ROOT = Path(__file__).resolve().parent.parent
 
 
 def _bench(*args: str) -> list[str]:
-    r = subprocess.run([sys.executable, "-m", "tests.bench.run", "--size", "XS", "--repeat", "1", *args],
-                       check=False, capture_output=True, text=True, cwd=ROOT, timeout=600)
+    # -P and PYTHONPATH=tests: the bench imports the installed package, not the checkout's monitor/.
+    env = {**os.environ, "PYTHONPATH": str(ROOT / "tests")}
+    r = subprocess.run([sys.executable, "-P", "-m", "bench.run", "--size", "XS", "--repeat", "1", *args],
+                       check=False, capture_output=True, text=True, cwd=ROOT, env=env, timeout=600)
     assert r.returncode == 0, r.stderr
     return r.stdout.splitlines()
 
@@ -54,7 +57,7 @@ def test_worker_peak_memory_is_its_own_not_the_drivers(tmp_path):
     """A forked child's ``ru_maxrss`` starts from the parent's peak; the bench must not report it.
 
     The driver here holds 1 GiB; a stats worker on 10 experiments needs a small fraction of that."""
-    from tests.bench import run
+    from bench import run
 
     ballast = bytearray(1 << 30)
     ballast[::4096] = b"\x01" * ((1 << 30) // 4096)  # touch every page, so it is resident

@@ -18,7 +18,7 @@ AS_OF = f"{DEMO_AS_OF:%Y-%m-%dT%H:%MZ}"
 
 
 def _cli(*args, cwd=None):
-    return subprocess.run([sys.executable, "-m", "monitor", *args], capture_output=True, text=True, cwd=cwd, timeout=300)
+    return subprocess.run([sys.executable, "-P", "-m", "monitor", *args], capture_output=True, text=True, cwd=cwd, timeout=300)
 
 
 def test_usage_error_exits_2_in_one_line():

@@ -213,7 +213,7 @@ def test_sigkill_at_random_points_loses_and_doubles_nothing(wdir):
 
 def _real_run(config: Path, as_of: datetime) -> subprocess.Popen:
     env = dict(os.environ, PYTHONPATH=str(ROOT))
-    return subprocess.Popen([sys.executable, "-m", "monitor", "run", "--config", str(config), "--as-of", as_of.isoformat(),
+    return subprocess.Popen([sys.executable, "-P", "-m", "monitor", "run", "--config", str(config), "--as-of", as_of.isoformat(),
                              "--format", "json"], stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=env, text=True)
 
 

@@ -213,3 +213,18 @@ def test_novelty_warns_exactly_on_the_planted_time_varying_effects(demo, duckdb_
                  if m.get("role", "guardrail") != "diagnostic" and m.get("aggregate", "sum") != "mean"]
     n_treatments = sum(len(e.variants) - 1 for e in duckdb_result.experiments)
     assert len(found) == len(evaluated) * n_treatments
+
+
+def test_the_readme_digest_picture_shows_the_current_demo(duckdb_result):
+    """``docs/digest.png`` carries a fingerprint of the demo's findings; a change to what the demo
+    finds or how a finding is worded makes the picture stale: regenerate it with
+    ``.venv/bin/python -P docs/make_digest_png.py`` and commit it."""
+    import importlib.util
+    from pathlib import Path
+
+    script = Path(__file__).resolve().parent.parent / "docs" / "make_digest_png.py"
+    spec = importlib.util.spec_from_file_location("make_digest_png", script)
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    assert module.recorded_fingerprint() == module.fingerprint(duckdb_result), (
+        "docs/digest.png shows an older demo: run .venv/bin/python -P docs/make_digest_png.py")

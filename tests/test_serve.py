@@ -213,7 +213,7 @@ def test_serve_process_exits_0_on_sigterm_with_json_logs(wdir, tmp_path):
     conf = tmp_path / "c.yaml"
     conf.write_text(CONFIG.replace('"duckdb:///w.duckdb"', f'"duckdb:///{wdir / "w.duckdb"}"'))
     env = dict(os.environ, PYTHONPATH=str(ROOT))
-    p = subprocess.Popen([sys.executable, "-m", "monitor", "serve", "--config", str(conf), "--log-format", "json"],
+    p = subprocess.Popen([sys.executable, "-P", "-m", "monitor", "serve", "--config", str(conf), "--log-format", "json"],
                          stderr=subprocess.PIPE, stdout=subprocess.PIPE, text=True, env=env)
     lines = []
     deadline = time.monotonic() + 60

@@ -44,7 +44,7 @@ import time
 from datetime import timedelta
 from pathlib import Path
 
-from tests.bench.warehouse import DAYS, END, SIZES, build, write_config
+from .warehouse import DAYS, END, SIZES, build, write_config
 
 KINDS = ("cold", "warm", "floor", "floor-lean", "stats", "stats-looks", "baseline")
 PG_KINDS = ("cold", "warm", "floor")
@@ -399,11 +399,16 @@ def _measure(kind: str, directory: Path, pg_url: str | None, experiments: int) -
     too (once the worker has exec'd), so a worker killed for memory still has a peak."""
     import threading
 
-    cmd = [sys.executable, "-m", "tests.bench.run", "--worker", kind, "--dir", str(directory),
+    # The worker is this module under the name it was imported by (``tests.bench.run`` from the
+    # checkout, or ``bench.run`` as the smoke test imports it to measure the installed package), with
+    # only that module's root folder added to the path.
+    name = __spec__.name
+    env = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parents[name.count(".")])}
+    cmd = [sys.executable, "-P", "-m", name, "--worker", kind, "--dir", str(directory),
            "--stats-experiments", str(experiments)]
     if pg_url:
         cmd += ["--engine", "postgres", "--pg-url", pg_url]
-    proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, cwd=Path(__file__).resolve().parents[2])
+    proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, env=env)
     seen = [0.0]
     done = threading.Event()
 
