@@ -25,6 +25,7 @@ import asyncio
 import email
 import email.policy
 import json
+import logging
 import os
 import random
 import sqlite3
@@ -56,6 +57,16 @@ from monitor.state import SCHEMA_VERSION, StateStore, meta
 UTC = timezone.utc
 ROOT = Path(__file__).resolve().parent.parent
 TRIAL_DAYS = int(os.environ.get("EXPWATCH_DELIVERY_TRIAL_DAYS", "34"))
+
+
+@pytest.fixture(autouse=True)
+def _reset_logging():
+    """`main` attaches a handler to the captured stderr; later tests must not log to it."""
+    yield
+    lg = logging.getLogger("monitor")
+    lg.handlers.clear()
+    lg.setLevel(logging.NOTSET)
+    lg.propagate = True
 
 
 # -- the SMTP sink ---------------------------------------------------------------------
@@ -101,8 +112,8 @@ class FaultySink:
             server.transport.abort()
             return "451 4.3.0 never seen"
         msg = email.message_from_bytes(envelope.original_content or envelope.content, policy=email.policy.default)
-        with self.lock:
-            self.stored.append((rcpt, str(msg["Message-ID"]), str(msg["Subject"])))
+        with self.lock:  # one copy per envelope recipient
+            self.stored.extend((r, str(msg["Message-ID"]), str(msg["Subject"])) for r in envelope.rcpt_tos)
         if f == "reply_lost":
             server.transport.abort()
         return "250 OK"
@@ -200,7 +211,6 @@ state: {{url: "sqlite:///{tmp_path / 'state.sqlite'}"}}
     sender: expwatch@library.example
     recipients: [{", ".join(recipients)}]
     timeout_seconds: 0.3
-    deadline_hours: 12
 {extra}"""
     path = tmp_path / "expwatch.yaml"
     path.write_text(text)
