@@ -25,7 +25,6 @@ import asyncio
 import email
 import email.policy
 import json
-import logging
 import os
 import random
 import sqlite3
@@ -44,6 +43,7 @@ import pytest
 import sqlalchemy as sa
 from conftest import registry_frame, write_duckdb_warehouse
 from test_digest import _free_port
+from test_serve import _reset_logging  # noqa: F401  (autouse: `main` attaches a handler to captured stderr)
 
 from monitor import outbox as ob
 from monitor.cli import main
@@ -57,16 +57,6 @@ from monitor.state import SCHEMA_VERSION, StateStore, meta
 UTC = timezone.utc
 ROOT = Path(__file__).resolve().parent.parent
 TRIAL_DAYS = int(os.environ.get("EXPWATCH_DELIVERY_TRIAL_DAYS", "34"))
-
-
-@pytest.fixture(autouse=True)
-def _reset_logging():
-    """`main` attaches a handler to the captured stderr; later tests must not log to it."""
-    yield
-    lg = logging.getLogger("monitor")
-    lg.handlers.clear()
-    lg.setLevel(logging.NOTSET)
-    lg.propagate = True
 
 
 # -- the SMTP sink ---------------------------------------------------------------------
