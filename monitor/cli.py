@@ -142,6 +142,8 @@ def _notify_parsers(sub: Any, common: Any) -> None:
     out = dg.add_mutually_exclusive_group()
     out.add_argument("--send", action="store_true", help="e-mail it to notify.email.recipients and start the next window")
     out.add_argument("--out", metavar="FILE", help="write the HTML version (charts embedded) to FILE")
+    dg.add_argument("--force", action="store_true",
+                    help="with --send: send today's digest again even if every recipient already has it")
 
     al = sub.add_parser("alerts", help="list the open alerts, with mutes and queued notifications",
                         description="List the open alerts from the state store, most severe first, marking muted ones, "
@@ -366,9 +368,16 @@ def _digest(cfg: Config, args: argparse.Namespace, state: Any, err: Console) -> 
     if args.send:
         from monitor.digest import run_digest
 
-        digest = run_digest(cfg)
-        err.print(f"digest: sent to {len(ncfg.email.recipients)} recipient(s): {digest.subject}", highlight=False, soft_wrap=True)
+        sent = run_digest(cfg, force=args.force)
+        if sent.already:
+            err.print(f"digest {sent.day}: already delivered to {len(sent.delivered)} recipient(s), nothing sent "
+                      f"(--force sends it again): {sent.subject}", highlight=False, markup=False, soft_wrap=True)
+        else:  # markup=False: a subject such as "[expwatch] ..." is printed as sent, not read as a style tag
+            err.print(f"digest {sent.day}: sent to {len(sent.delivered)} recipient(s): {sent.subject}",
+                      highlight=False, markup=False, soft_wrap=True)
         return 0
+    if args.force:
+        raise ConfigError("--force: only with --send")
     digest = build_digest(state.engine, experiments_meta=meta, subject_prefix=prefix, charts=bool(args.out))
     if args.out:
         out = Path(args.out)

@@ -25,7 +25,7 @@ from monitor import ledger, outbox
 from monitor.checks import allocation_findings, design_findings
 from monitor.collision import collision_findings, pull_collisions
 from monitor.config import Config
-from monitor.errors import ConfigError, MonitorError, WarehouseError
+from monitor.errors import ConfigError, MonitorError, StateError, WarehouseError
 from monitor.explain import attach_diagnoses
 from monitor.findings import Finding
 from monitor.guardrails import MetricSnapshot, guardrail_findings, pull_metrics
@@ -128,7 +128,9 @@ def run_cycle(
     WarehouseError, StateError, ConfigError
         Nothing of the run has been written to the state store when one is
         raised; a warehouse failure queues one "monitor failing" notice when
-        webhooks are configured (not one per failed run).
+        webhooks are configured (not one per failed run). Exception: a
+        ``StateError`` from the delivery after the run was recorded (the store
+        could not be written while marking messages); its message says so.
     """
     started = clock()
     as_of = (as_of or started).astimezone(timezone.utc)
@@ -139,9 +141,11 @@ def run_cycle(
         state = StateStore("sqlite://", engine=sa.create_engine("sqlite://", poolclass=sa.pool.StaticPool))
     else:
         state = StateStore(cfg.state.url or "", migrate=not dry_run)
-    wh = open_warehouse(cfg.warehouse, tracer=tracer)
     notifying = notify and not dry_run and _wants_notifications(cfg)
+    wh = open_warehouse(cfg.warehouse, tracer=tracer)
     try:
+        # the cycle's place in the order of cycles, taken before it reads anything (monitor health)
+        number = outbox.begin_cycle(state.engine) if notifying else None
         wh.pin()  # one session for the run's queries (DuckDB): one snapshot, one shared first-assignment relation
         lock_cm = state.lock(wait_seconds=wait_seconds) if not dry_run else nullcontext()
         with lock_cm:
@@ -191,11 +195,11 @@ def run_cycle(
                 })
             result.recorded = True
         if notifying:
-            _deliver(cfg, state, healthy=True)
+            _deliver(cfg, state, healthy=True, cycle=number)
         return result
     except WarehouseError as exc:
         if notifying:
-            _deliver(cfg, state, healthy=False, failure=str(exc))
+            _deliver(cfg, state, healthy=False, failure=str(exc), cycle=number)
         raise
     finally:
         wh.dispose()
@@ -207,18 +211,23 @@ def _wants_notifications(cfg: Config) -> bool:
     return bool(n.webhooks or n.heartbeat_url)
 
 
-def _deliver(cfg: Config, state: StateStore, *, healthy: bool, failure: str | None = None) -> None:
-    """Deliver what the outbox holds; never fails a run that has already been decided."""
+def _deliver(cfg: Config, state: StateStore, *, healthy: bool, failure: str | None = None,
+             cycle: int | None = None) -> None:
+    """Deliver what the outbox holds. A delivery failure never fails a run that has
+    already been decided (the messages stay queued); a state store that cannot be
+    written does: :class:`StateError` (one line, exit 1)."""
     try:
         if healthy:
-            outbox.record_success(state.engine, cfg.notify)
+            outbox.record_success(state.engine, cfg.notify, cycle=cycle)
         else:
-            outbox.record_failure(state.engine, failure or "the monitor failed", cfg.notify)
+            outbox.record_failure(state.engine, failure or "the monitor failed", cfg.notify, cycle=cycle)
         report = outbox.deliver_pending(state.engine, cfg.notify)
         if report.failed:
             log.warning("notifications: %d delivered, %d failed and stay queued", report.delivered, report.failed)
         if healthy:
             outbox.send_heartbeat(cfg.notify)
+    except StateError as exc:  # reported once by the caller: `run` prints it, `serve` logs it as an error
+        raise StateError(f"the run was recorded, but {exc}" if healthy else str(exc)) from exc
     except (MonitorError, SQLAlchemyError) as exc:
         log.warning("notifications not delivered this run (they stay queued): %s", exc)
 

@@ -29,6 +29,8 @@ import logging
 import os
 import smtplib
 import ssl
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import datetime, timedelta, timezone
 from email.message import EmailMessage
@@ -41,14 +43,30 @@ import numpy as np
 import pandas as pd
 import sqlalchemy as sa
 from sqlalchemy.engine import Engine
+from sqlalchemy.exc import SQLAlchemyError
 
-from monitor.errors import ConfigError, NotifyError
+from monitor.errors import ConfigError, NotifyError, StateError
 from monitor.findings import SEVERITY_NAMES
 from monitor.notify_config import EmailConfig
-from monitor.outbox import Mute, _metas, active_mutes, ensure_notify_tables, get_state, set_state
+from monitor.outbox import (
+    Mute,
+    _iso,
+    _key,
+    _locked_state,
+    _metas,
+    active_mutes,
+    deliver_pending,
+    ensure_notify_tables,
+    get_state,
+    insert_email,
+    next_email_attempt,
+    outbox,
+    set_state,
+)
 from monitor.state import alerts, counts, findings, runs
 
-__all__ = ["Digest", "DigestAlert", "ExperimentStatus", "build_digest", "mark_digest_sent", "open_alerts", "run_digest", "send_digest"]
+__all__ = ["Digest", "DigestAlert", "DigestSend", "ExperimentStatus", "build_digest", "digest_day", "mark_digest_sent",
+           "message_id_for", "open_alerts", "queue_digest", "retry_digest", "run_digest", "send_digest", "send_prepared"]
 
 log = logging.getLogger("monitor")
 
@@ -355,14 +373,14 @@ def mark_digest_sent(state_engine: Engine, digest: Digest, *, at: datetime | Non
                                    "run_id": digest.run_id, "sent_at": at.isoformat().replace("+00:00", "Z")}, at)
 
 
-def to_email(digest: Digest, email_cfg: EmailConfig) -> EmailMessage:
+def to_email(digest: Digest, email_cfg: EmailConfig, *, message_id: str | None = None) -> EmailMessage:
     """The MIME message: plain text, then HTML with its images as related parts."""
     msg = EmailMessage()
     msg["Subject"] = digest.subject
     msg["From"] = email_cfg.sender
     msg["To"] = ", ".join(email_cfg.recipients)
     msg["Date"] = formatdate(localtime=False, usegmt=True)
-    msg["Message-ID"] = make_msgid(domain=email_cfg.sender.split("@", 1)[1] or None)
+    msg["Message-ID"] = message_id or make_msgid(domain=email_cfg.sender.split("@", 1)[1] or None)
     msg.set_content(digest.text, subtype="plain", charset="utf-8")
     msg.add_alternative(digest.html, subtype="html", charset="utf-8")
     html_part = msg.get_payload()[1]
@@ -372,17 +390,10 @@ def to_email(digest: Digest, email_cfg: EmailConfig) -> EmailMessage:
     return msg
 
 
-def send_digest(digest: Digest, email_cfg: EmailConfig) -> None:
-    """Send the digest by SMTP (STARTTLS, implicit TLS or plain, per ``security``).
-
-    Raises
-    ------
-    ConfigError
-        A credentials environment variable named in the config is not set.
-    NotifyError
-        The server could not be reached, refused the login or the message; one
-        line naming the server, never the password.
-    """
+@contextmanager
+def _smtp(email_cfg: EmailConfig) -> Iterator[smtplib.SMTP]:
+    """A logged-in SMTP session (STARTTLS, implicit TLS or plain, per ``security``);
+    every failure becomes one :class:`NotifyError` line naming the server, never the password."""
     user = password = None
     if email_cfg.username_env:
         user = os.environ.get(email_cfg.username_env)
@@ -390,7 +401,6 @@ def send_digest(digest: Digest, email_cfg: EmailConfig) -> None:
         if not user or password is None:
             missing = email_cfg.username_env if not user else email_cfg.password_env
             raise ConfigError(f"email: environment variable {missing} is not set")
-    msg = to_email(digest, email_cfg)
     where = f"SMTP server {email_cfg.smtp_host}:{email_cfg.smtp_port}"
     ctx = ssl.create_default_context()
     try:
@@ -406,33 +416,178 @@ def send_digest(digest: Digest, email_cfg: EmailConfig) -> None:
                 smtp.ehlo()
             if user is not None:
                 smtp.login(user, password or "")
-            refused = smtp.send_message(msg)
+            yield smtp
     except smtplib.SMTPAuthenticationError:
         raise NotifyError(f"{where}: login refused for user from {email_cfg.username_env}") from None
     except smtplib.SMTPNotSupportedError as exc:
         raise NotifyError(f"{where}: {exc}") from None
+    except smtplib.SMTPRecipientsRefused as exc:
+        why = "; ".join(f"{r}: {c} {m.decode('utf-8', 'replace') if isinstance(m, bytes) else m}"
+                        for r, (c, m) in sorted(exc.recipients.items()))
+        raise NotifyError(f"{where}: refused the recipient ({why})") from None
+    except smtplib.SMTPServerDisconnected as exc:
+        raise NotifyError(f"{where}: connection closed before the server confirmed the message "
+                          f"({str(exc).splitlines()[0] if str(exc) else 'no reply'})") from None
+    except smtplib.SMTPResponseException as exc:
+        text = exc.smtp_error.decode("utf-8", "replace") if isinstance(exc.smtp_error, bytes) else str(exc.smtp_error)
+        raise NotifyError(f"{where}: {type(exc).__name__}: {exc.smtp_code} {text.splitlines()[0] if text else ''}".rstrip()) from None
     except smtplib.SMTPException as exc:
         raise NotifyError(f"{where}: {type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''}".rstrip(": ")) from None
     except (OSError, ssl.SSLError) as exc:
         raise NotifyError(f"{where}: {exc.strerror or type(exc).__name__}") from None
+
+
+def send_digest(digest: Digest, email_cfg: EmailConfig) -> None:
+    """Send the digest by SMTP to every recipient in one transaction, as it is built
+    (no outbox, no retries: :func:`run_digest` is the reliable path).
+
+    Raises
+    ------
+    ConfigError
+        A credentials environment variable named in the config is not set.
+    NotifyError
+        The server could not be reached, refused the login or the message; one
+        line naming the server, never the password.
+    """
+    msg = to_email(digest, email_cfg)
+    with _smtp(email_cfg) as smtp:
+        refused = smtp.send_message(msg)
     if refused:
-        log.warning("%s refused %d recipient(s): %s", where, len(refused), ", ".join(sorted(refused)))
+        log.warning("SMTP server %s:%s refused %d recipient(s): %s", email_cfg.smtp_host, email_cfg.smtp_port,
+                    len(refused), ", ".join(sorted(refused)))
 
 
-def run_digest(cfg: Any) -> Digest:
-    """Build the digest from ``cfg``'s state store, send it by e-mail and start the
-    next digest window: the scheduler's daily job (``expwatch serve``) and
-    ``expwatch digest --send``.
+def send_prepared(message: dict[str, Any], email_cfg: EmailConfig) -> None:
+    """Send one queued digest e-mail (an outbox row's payload, see :func:`queue_digest`)
+    to its one recipient, byte for byte as it was queued (same Message-ID on every try).
+
+    Raises
+    ------
+    ConfigError, NotifyError
+        As :func:`send_digest`; a refused recipient is an error here.
+    """
+    raw = base64.b64decode(message["mime"])
+    with _smtp(email_cfg) as smtp:
+        smtp.sendmail(email_cfg.sender, [message["recipient"]], raw)
+
+
+@dataclass(frozen=True)
+class DigestSend:
+    """What :func:`run_digest` did for one digest day."""
+
+    day: str
+    """The digest day (ISO date in the config's ``timezone``)."""
+    subject: str
+    """The subject as queued and sent."""
+    message_id: str
+    delivered: tuple[str, ...]
+    """Recipients whose server accepted the e-mail (now or earlier)."""
+    pending: tuple[str, ...] = ()
+    """Recipients still to be retried (until ``deadline_at``)."""
+    expired: tuple[str, ...] = ()
+    """Recipients given up on at the deadline (a monitor-health notice was queued)."""
+    already: bool = False
+    """Nothing was sent: the day's digest had already been delivered to everyone."""
+    queued: bool = False
+    """The day's digest was built and queued by this call."""
+    deadline_at: datetime | None = None
+    next_attempt_at: datetime | None = None
+    errors: tuple[str, ...] = ()
+
+
+def digest_day(cfg: Any, at: datetime) -> str:
+    """The digest day of ``at``: its date in the config's ``timezone``."""
+    from zoneinfo import ZoneInfo
+
+    return at.astimezone(ZoneInfo(getattr(cfg, "timezone", None) or "UTC")).date().isoformat()
+
+
+def _day_key(day: str) -> str:
+    return f"digest_day:{day}"
+
+
+def _row_key(day: str, seq: int, recipient: str, message_id: str) -> str:
+    return _key("digest", day, seq, recipient, message_id)
+
+
+def message_id_for(day: str, seq: int, email_cfg: EmailConfig, store_url: str) -> str:
+    """The Message-ID of a day's digest: the same on every retry of it, so a copy
+    sent twice is recognisably one message; ``seq`` counts forced resends. The tag
+    tells installations sharing a sender apart without revealing their store."""
+    tag = _key("digest-tag", store_url, email_cfg.sender)[:10]
+    domain = email_cfg.sender.split("@", 1)[1] or "expwatch.invalid"
+    return f"<expwatch-digest.{day}.{seq}.{tag}@{domain}>"
+
+
+def queue_digest(state_engine: Engine, digest: Digest, email_cfg: EmailConfig, day: str, *, at: datetime,
+                 store_url: str, force: bool = False) -> tuple[dict[str, Any], bool]:
+    """Queue the day's digest in the outbox: one e-mail per recipient, all with the
+    day's Message-ID and a deadline ``email.deadline_hours`` ahead, and start the
+    next digest window, in one transaction.
+
+    Returns the day's record and whether this call queued it (False: it was
+    queued already and ``force`` is off). With ``force`` the digest is queued
+    again under the next Message-ID and the day's older undelivered e-mails are
+    closed, so nobody receives both.
+    """
+    with state_engine.begin() as conn:
+        st = _locked_state(conn, _day_key(day), at)
+        if st and not force:
+            return st, False
+        seq = int(st.get("seq", 0)) + 1
+        if st:
+            old = [_row_key(day, int(st["seq"]), r, st["message_id"]) for r in st["recipients"]]
+            conn.execute(sa.update(outbox).where(outbox.c.idempotency_key.in_(old), outbox.c.delivered_at.is_(None),
+                                                 outbox.c.expired_at.is_(None))
+                         .values(expired_at=at, last_error="superseded by a forced resend"))
+        mid = message_id_for(day, seq, email_cfg, store_url)
+        msg = to_email(digest, email_cfg, message_id=mid)
+        raw = msg.as_bytes(policy=msg.policy.clone(linesep="\r\n"))  # SMTP line endings, as send_message writes
+        deadline = at + timedelta(hours=email_cfg.deadline_hours)
+        recipients = list(dict.fromkeys(email_cfg.recipients))
+        mime = base64.b64encode(raw).decode("ascii")
+        for r in recipients:
+            insert_email(conn, _row_key(day, seq, r, mid), r, {"kind": "digest", "day": day, "seq": seq,
+                                                              "recipient": r, "message_id": mid,
+                                                              "subject": digest.subject, "mime": mime}, at, deadline)
+        st = {"seq": seq, "message_id": mid, "subject": digest.subject, "recipients": recipients,
+              "queued_at": _iso(at), "deadline_at": _iso(deadline)}
+        set_state(conn, _day_key(day), st, at)
+        if digest.as_of is not None:  # the content is in the outbox now: the next digest starts after it
+            set_state(conn, "digest", {"last_as_of": _iso(digest.as_of), "run_id": digest.run_id,
+                                       "sent_at": _iso(at)}, at)
+    return st, True
+
+
+def _day_rows(conn: sa.Connection, day: str, st: dict[str, Any]) -> list[dict[str, Any]]:
+    keys = {_row_key(day, int(st["seq"]), r, st["message_id"]): r for r in st["recipients"]}
+    rows = conn.execute(sa.select(outbox.c.id, outbox.c.idempotency_key, outbox.c.delivered_at, outbox.c.expired_at,
+                                  outbox.c.next_attempt_at, outbox.c.deadline_at, outbox.c.last_error)
+                        .where(outbox.c.idempotency_key.in_(list(keys)))).mappings().all()
+    return [{**r, "recipient": keys[r["idempotency_key"]]} for r in rows]
+
+
+def run_digest(cfg: Any, *, force: bool = False, clock: Callable[[], datetime] | None = None,
+               session: Any = None) -> DigestSend:
+    """Send today's digest reliably: the scheduler's daily job (``expwatch serve``)
+    and ``expwatch digest --send``.
+
+    The first call of a digest day builds the digest and queues it in the outbox
+    (one e-mail per recipient, :func:`queue_digest`), which also starts the next
+    digest window; every call then sends what is due (the day's undelivered
+    e-mails at once, other queued messages when their retry has come). A call for
+    a day whose digest was delivered to everyone sends nothing unless ``force``.
 
     Raises
     ------
     ConfigError
         When the configuration has no ``notify.email``.
     NotifyError
-        When the mail could not be delivered (the window is not advanced, so the
-        next digest still covers these alerts).
+        When a recipient has not got the day's digest yet (one line naming them,
+        the error and until when it is retried) or was given up on.
+    StateError
+        The state store could not be written.
     """
-    from monitor.errors import ConfigError
     from monitor.registry import experiments_from_inline
     from monitor.state import StateStore
 
@@ -440,12 +595,62 @@ def run_digest(cfg: Any) -> Digest:
     if email is None:
         raise ConfigError(f"{cfg.where}: notify.email: sending the digest needs an e-mail configuration "
                           "(smtp_host, sender, recipients)")
-    meta = experiments_from_inline(cfg.registry)[0] if cfg.registry.inline is not None else None
+    clock = clock or (lambda: datetime.now(timezone.utc))
+    now = clock()
+    day = digest_day(cfg, now)
     state = StateStore(cfg.state.url)
     try:
-        digest = build_digest(state.engine, experiments_meta=meta, subject_prefix=email.subject_prefix)
-        send_digest(digest, email)
-        mark_digest_sent(state.engine, digest)
+        eng = state.engine
+        ensure_notify_tables(eng)
+        with eng.connect() as conn:
+            st = get_state(conn, _day_key(day))
+        queued = False
+        if not st or force:
+            meta = experiments_from_inline(cfg.registry)[0] if cfg.registry.inline is not None else None
+            digest = build_digest(eng, experiments_meta=meta, subject_prefix=email.subject_prefix)
+            st, queued = queue_digest(eng, digest, email, day, at=now, store_url=cfg.state.url or "", force=force)
+        with eng.connect() as conn:
+            rows = _day_rows(conn, day, st)
+        open_ids = [r["id"] for r in rows if r["delivered_at"] is None and r["expired_at"] is None]
+        report = None
+        if open_ids:
+            report = deliver_pending(eng, cfg.notify, clock=clock, now_ids=open_ids, session=session)
+            with eng.connect() as conn:
+                rows = _day_rows(conn, day, st)
+    except SQLAlchemyError as exc:
+        from monitor.state import _first
+
+        raise StateError(f"state store: write failed while sending the digest: {_first(exc)}") from exc
     finally:
         state.dispose()
-    return digest
+    pend = [r for r in rows if r["delivered_at"] is None and r["expired_at"] is None]
+    out = DigestSend(day, st["subject"], st["message_id"],
+                     tuple(sorted(r["recipient"] for r in rows if r["delivered_at"] is not None)),
+                     tuple(sorted(r["recipient"] for r in pend)),
+                     tuple(sorted(r["recipient"] for r in rows if r["expired_at"] is not None and r["delivered_at"] is None)),
+                     already=report is None and not queued, queued=queued,
+                     deadline_at=datetime.fromisoformat(st["deadline_at"].replace("Z", "+00:00")),
+                     next_attempt_at=min((r["next_attempt_at"] for r in pend), default=None),
+                     errors=tuple(r["last_error"] for r in pend if r["last_error"]))
+    if out.pending or out.expired:
+        missing = ", ".join(f"{r['recipient']} ({r['last_error'] or 'not tried'})"
+                            for r in rows if r["delivered_at"] is None)
+        how = (f"retried with back-off until {out.deadline_at:%Y-%m-%d %H:%M} UTC" if out.pending
+               else "given up at the deadline; a monitor-health notice is queued (--force sends it again)")
+        raise NotifyError(f"digest {day}: delivered to {len(out.delivered)} of {len(rows)} recipient(s); "
+                          f"not to {missing}; {how}")
+    return out
+
+
+def retry_digest(cfg: Any, *, clock: Callable[[], datetime] | None = None, session: Any = None) -> datetime | None:
+    """Send the queued digest e-mails (and other messages) whose retry has come,
+    close those past their deadline; returns when the next undelivered digest
+    e-mail is due (None: none is left). Used by ``expwatch serve``."""
+    from monitor.state import StateStore
+
+    state = StateStore(cfg.state.url)
+    try:
+        deliver_pending(state.engine, cfg.notify, clock=clock, session=session)
+        return next_email_attempt(state.engine)
+    finally:
+        state.dispose()

@@ -29,6 +29,8 @@ import hmac
 import json
 import logging
 import os
+from datetime import datetime, timezone
+from email.utils import parsedate_to_datetime
 from functools import lru_cache
 from importlib import resources
 from pathlib import Path
@@ -41,14 +43,41 @@ import requests
 from monitor.errors import ConfigError, NotifyError
 from monitor.notify_config import WebhookConfig
 
-__all__ = ["IDEMPOTENCY_HEADER", "SIGNATURE_HEADER", "mask_url", "ping_heartbeat", "post_webhook",
-           "render_body", "sign", "verify_signature"]
+__all__ = ["IDEMPOTENCY_HEADER", "SIGNATURE_HEADER", "RetryLater", "mask_url", "parse_retry_after", "ping_heartbeat",
+           "post_webhook", "render_body", "sign", "verify_signature"]
 
 log = logging.getLogger("monitor")
 
 IDEMPOTENCY_HEADER = "X-Expwatch-Idempotency-Key"
 SIGNATURE_HEADER = "X-Expwatch-Signature"
 USER_AGENT = "expwatch-notify/1"
+
+
+class RetryLater(NotifyError):
+    """The receiver refused the request and said when to try again (``Retry-After``)."""
+
+    def __init__(self, message: str, retry_after: float) -> None:
+        super().__init__(message)
+        self.retry_after = retry_after
+        """Seconds to wait, as the server asked (>= 0, not yet capped)."""
+
+
+def parse_retry_after(value: str | None, *, now: datetime | None = None) -> float | None:
+    """Seconds to wait from a ``Retry-After`` header: delay-seconds or an HTTP-date
+    (RFC 9110, section 10.2.3); None when absent or unreadable. A date in the past
+    gives 0."""
+    if value is None or not value.strip():
+        return None
+    v = value.strip()
+    if v.isdigit():
+        return float(int(v))
+    try:
+        when = parsedate_to_datetime(v)
+    except (TypeError, ValueError, IndexError):
+        return None
+    if when.tzinfo is None:  # RFC 9110 dates are GMT
+        when = when.replace(tzinfo=timezone.utc)
+    return max(0.0, (when - (now or datetime.now(timezone.utc))).total_seconds())
 
 
 def mask_url(url: str) -> str:
@@ -123,6 +152,8 @@ def post_webhook(hook: WebhookConfig, body: bytes, key: str, *, session: request
 
     Raises
     ------
+    RetryLater
+        A non-2xx answer with a ``Retry-After`` header (429, 503...).
     NotifyError
         Connection failure, timeout or a non-2xx answer; the message names the
         destination and the masked URL only.
@@ -150,6 +181,9 @@ def post_webhook(hook: WebhookConfig, body: bytes, key: str, *, session: request
             http.close()
     try:
         if not 200 <= resp.status_code < 300:
+            wait = parse_retry_after(resp.headers.get("Retry-After"))
+            if wait is not None:
+                raise RetryLater(f"{where}: answered HTTP {resp.status_code} (Retry-After {wait:.0f}s)", wait)
             raise NotifyError(f"{where}: answered HTTP {resp.status_code}")
         return resp.status_code
     finally:

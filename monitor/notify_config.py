@@ -95,6 +95,10 @@ class EmailConfig(_Model):
     recipients: list[str] = Field(min_length=1)
     subject_prefix: str = "[expwatch]"
     timeout_seconds: Annotated[float, Field(gt=0, le=600)] = 30.0
+    deadline_hours: Annotated[float, Field(gt=0, le=168)] = 12.0
+    """An undelivered digest e-mail is retried (with the webhooks' back-off) for this
+    long after it was queued; then it is given up and a monitor-health notice goes
+    to the webhooks."""
 
     @field_validator("username_env", "password_env")
     @classmethod

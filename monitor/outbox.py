@@ -51,6 +51,7 @@ import json
 import logging
 import random
 import time
+import uuid
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from datetime import datetime, timedelta, timezone
@@ -59,16 +60,17 @@ from typing import Any
 import requests
 import sqlalchemy as sa
 from sqlalchemy.engine import Connection, Engine
-from sqlalchemy.exc import SQLAlchemyError
+from sqlalchemy.exc import IntegrityError, SQLAlchemyError
 
-from monitor.errors import ConfigError, MonitorError
+from monitor.errors import ConfigError, MonitorError, StateError
 from monitor.findings import SEVERITY_NAMES
 from monitor.notify_config import NotifyConfig, WebhookConfig
 from monitor.state import UTCDateTime, alerts, metadata
 
-__all__ = ["DeliveryReport", "ExperimentMeta", "Mute", "active_mutes", "deliver_pending", "enqueue",
-           "ensure_notify_tables", "get_state", "migration_outbox", "mute", "outbox", "pending_messages",
-           "record_failure", "record_success", "send_heartbeat", "set_state", "unmute"]
+__all__ = ["DeliveryReport", "ExperimentMeta", "Mute", "active_mutes", "begin_cycle", "deliver_pending", "enqueue",
+           "ensure_notify_tables", "expire_digests", "get_state", "insert_email", "migration_delivery_leases",
+           "migration_outbox", "mute", "next_email_attempt", "outbox", "pending_messages", "record_failure",
+           "record_success", "send_heartbeat", "set_state", "unmute"]
 
 log = logging.getLogger("monitor")
 
@@ -87,8 +89,13 @@ outbox = sa.Table(
     sa.Column("next_attempt_at", UTCDateTime, nullable=False),
     sa.Column("delivered_at", UTCDateTime),
     sa.Column("last_error", sa.Text),
+    sa.Column("lease_owner", sa.String(64)),        # the deliverer sending the row now (NULL: nobody)
+    sa.Column("lease_expires_at", UTCDateTime),     # ... until then; afterwards another may claim it
+    sa.Column("deadline_at", UTCDateTime),          # digest e-mails: give up after this time
+    sa.Column("expired_at", UTCDateTime),           # set when a digest e-mail passed its deadline undelivered
     sa.Index("ix_expwatch_outbox_pending", "delivered_at", "next_attempt_at"),
 )
+_LEASE_COLUMNS = ("lease_owner", "lease_expires_at", "deadline_at", "expired_at")
 notify_state = sa.Table(
     "expwatch_notify_state", metadata,
     sa.Column("key", sa.String(64), primary_key=True),
@@ -111,13 +118,30 @@ def migration_outbox(conn: Connection) -> None:
     metadata.create_all(conn, tables=_TABLES, checkfirst=True)
 
 
+def migration_delivery_leases(conn: Connection) -> None:
+    """Add the lease, deadline and expiry columns to an outbox created before them (idempotent)."""
+    if not sa.inspect(conn).has_table(outbox.name):
+        migration_outbox(conn)
+        return
+    have = {c["name"] for c in sa.inspect(conn).get_columns(outbox.name)}
+    q = conn.dialect.identifier_preparer.quote
+    for name in _LEASE_COLUMNS:
+        if name not in have:
+            col = outbox.c[name]
+            conn.execute(sa.text(f"ALTER TABLE {q(outbox.name)} ADD COLUMN {q(name)} "
+                                 f"{col.type.compile(dialect=conn.dialect)}"))
+
+
 def ensure_notify_tables(engine: Engine) -> None:
-    """Create the notification tables if a store predates them (no-op otherwise)."""
+    """Create the notification tables (and the outbox's lease columns) if a store
+    predates them (no-op otherwise)."""
     insp = sa.inspect(engine)
-    if all(insp.has_table(t.name) for t in _TABLES):
+    if all(insp.has_table(t.name) for t in _TABLES) and \
+            set(_LEASE_COLUMNS) <= {c["name"] for c in insp.get_columns(outbox.name)}:
         return
     with engine.begin() as conn:
         migration_outbox(conn)
+        migration_delivery_leases(conn)
 
 
 def _now() -> datetime:
@@ -347,12 +371,16 @@ class DeliveryReport:
     failed: int
     """Messages tried and still undelivered; each has a retry scheduled."""
     requests: int
-    """HTTP requests sent (retries within the round included)."""
+    """HTTP requests and SMTP transactions sent (retries within the round included)."""
     pending: int
     """Undelivered messages left in the outbox (due later, failed, or for a removed destination)."""
     orphaned: int
     """Of those, messages whose destination is no longer configured."""
     errors: tuple[str, ...] = ()
+    leased: int = 0
+    """Due messages skipped because another process held their lease."""
+    expired: int = 0
+    """Digest e-mails closed this round because their deadline passed undelivered."""
 
 
 def backoff_seconds(failed_rounds: int, cfg_notify: NotifyConfig, rng: random.Random) -> float:
@@ -363,10 +391,71 @@ def backoff_seconds(failed_rounds: int, cfg_notify: NotifyConfig, rng: random.Ra
     return d / 2 + rng.uniform(0.0, d / 2)
 
 
+def _store_error(engine: Engine, exc: SQLAlchemyError) -> StateError:
+    from monitor.state import _first
+    from monitor.warehouse import safe_url
+
+    return StateError(f"state store {safe_url(engine.url)}: write failed while delivering notifications "
+                      f"({_first(exc)}); undelivered messages stay queued")
+
+
+def _claim(engine: Engine, row_id: int, owner: str, now: datetime, seconds: float, *,
+           due: bool = True) -> Mapping[str, Any] | None:
+    """Take the lease of one open row (and, with ``due``, only if its next attempt
+    has come); returns the row as it stands, or None when it was delivered,
+    rescheduled or is leased by another deliverer."""
+    cond = [outbox.c.id == row_id, outbox.c.delivered_at.is_(None), outbox.c.expired_at.is_(None),
+            sa.or_(outbox.c.lease_owner.is_(None), outbox.c.lease_expires_at <= now)]
+    if due:
+        cond.append(outbox.c.next_attempt_at <= now)
+    with engine.begin() as conn:
+        res = conn.execute(sa.update(outbox).where(*cond).values(
+            lease_owner=owner, lease_expires_at=now + timedelta(seconds=seconds)))
+        if res.rowcount != 1:
+            return None
+        return conn.execute(sa.select(outbox).where(outbox.c.id == row_id)).mappings().one()
+
+
+def _send_webhook(row: Mapping[str, Any], hook: WebhookConfig, session: requests.Session,
+                  sleep: Callable[[float], None]) -> tuple[int, str | None, float | None]:
+    """One delivery round of a webhook message: (tries, error or None, Retry-After seconds or None)."""
+    from monitor.notify import RetryLater, post_webhook, render_body
+
+    message = json.loads(row["payload"])
+    tries, error = 0, None
+    for i in range(hook.max_attempts):
+        tries += 1
+        try:
+            body = render_body(message, hook)
+            post_webhook(hook, body, row["idempotency_key"], session=session)
+            return tries, None, None
+        except ConfigError as exc:
+            return tries, str(exc), None  # retrying at once cannot fix a template or a missing secret
+        except RetryLater as exc:  # the server said when: that ends the round
+            return tries, str(exc), exc.retry_after
+        except MonitorError as exc:
+            error = str(exc)
+            if i + 1 < hook.max_attempts:
+                sleep(min(0.25 * 2**i, 2.0))
+    return tries, error, None
+
+
+def _send_email(row: Mapping[str, Any], email_cfg: Any) -> tuple[int, str | None, float | None]:
+    """One SMTP transaction for one digest recipient (one try per round)."""
+    from monitor.digest import send_prepared
+
+    try:
+        send_prepared(json.loads(row["payload"]), email_cfg)
+    except MonitorError as exc:
+        return 1, str(exc), None
+    return 1, None, None
+
+
 def deliver_pending(engine: Engine, cfg_notify: NotifyConfig, *, session: requests.Session | None = None,
                     clock: Callable[[], datetime] | None = None, rng: random.Random | None = None,
-                    sleep: Callable[[float], None] = time.sleep, limit: int = 1000) -> DeliveryReport:
-    """Send every due, undelivered webhook message.
+                    sleep: Callable[[float], None] = time.sleep, limit: int = 1000,
+                    now_ids: Sequence[int] = ()) -> DeliveryReport:
+    """Send every due, undelivered message: webhook messages and digest e-mails.
 
     Parameters
     ----------
@@ -374,7 +463,8 @@ def deliver_pending(engine: Engine, cfg_notify: NotifyConfig, *, session: reques
         The state store.
     cfg_notify
         Destinations by name; a queued message whose destination was removed
-        from the config stays queued (counted in ``orphaned``).
+        from the config stays queued (counted in ``orphaned``). Digest e-mails
+        are sent only when ``email`` is configured.
     session
         HTTP session (tests pass one; default a fresh one per call).
     clock
@@ -382,155 +472,327 @@ def deliver_pending(engine: Engine, cfg_notify: NotifyConfig, *, session: reques
     rng
         Randomness of the backoff jitter (seed it for reproducible schedules).
     sleep
-        Pause between retries within one round (``min(0.25 * 2**i, 2)`` seconds).
+        Pause between webhook retries within one round (``min(0.25 * 2**i, 2)`` seconds).
     limit
         At most this many messages per call, oldest first.
+    now_ids
+        Outbox ids to try now even if their next attempt is later (a manual
+        ``expwatch digest --send`` retries the day's digest at once).
 
     Returns
     -------
     DeliveryReport
 
+    Raises
+    ------
+    StateError
+        The state store could not be written (one line; nothing is lost: an
+        unmarked message is sent again later with the same key).
+
     Notes
     -----
-    Each message is marked delivered (or its failure recorded) in its own
-    transaction, so a crash loses at most the mark of the message in flight,
-    which is then re-sent with the same idempotency key. A template that fails
-    to render counts as a failed attempt and is retried like a network error
-    (fixing the template releases the message).
+    Before sending a row the deliverer takes its *lease* (``lease_owner``,
+    ``lease_expires_at``) in a conditional UPDATE, so two processes never send
+    the same row at the same time; the lease lasts as long as one round can take
+    (timeouts and pauses) plus a minute, so a deliverer killed mid-round frees
+    its rows by itself. Each message is marked delivered (or its failure
+    recorded) in its own transaction, so a crash loses at most the mark of the
+    message in flight, which is then re-sent with the same idempotency key.
+
+    A webhook that answers with ``Retry-After`` (seconds or an HTTP date) ends
+    the round at once; the round counts as one failed round and the next attempt
+    waits what the server asked, at most ``retry_max_seconds``. A template that
+    fails to render counts as a failed attempt and is retried like a network
+    error (fixing the template releases the message). Digest e-mails get one SMTP
+    transaction per round and are closed at their deadline (:func:`expire_digests`).
     """
     clock = clock or _now
     rng = rng or random.Random()
     hooks: dict[str, WebhookConfig] = {h.name: h for h in cfg_notify.webhooks}
-    from monitor.notify import post_webhook, render_body
-
-    ensure_notify_tables(engine)
-    now = clock()
-    with engine.connect() as conn:
-        due = conn.execute(sa.select(outbox).where(outbox.c.delivered_at.is_(None), outbox.c.next_attempt_at <= now)
-                           .order_by(outbox.c.id).limit(limit)).mappings().all()
-    attempted = delivered = failed = n_requests = 0
+    me = uuid.uuid4().hex
+    attempted = delivered = failed = n_requests = leased = 0
     errors: list[str] = []
     own = session or requests.Session()
     try:
+        ensure_notify_tables(engine)
+        expired = expire_digests(engine, cfg_notify, clock=clock)
+        now = clock()
+        open_rows = sa.and_(outbox.c.delivered_at.is_(None), outbox.c.expired_at.is_(None))
+        due_now = outbox.c.next_attempt_at <= now
+        if now_ids:
+            due_now = sa.or_(due_now, outbox.c.id.in_(list(now_ids)))
+        with engine.connect() as conn:
+            due = conn.execute(sa.select(outbox).where(open_rows, due_now).order_by(outbox.c.id).limit(limit)).mappings().all()
         for row in due:
-            hook = hooks.get(row["destination"])
-            if hook is None:
+            if row["channel"] == "email":
+                if cfg_notify.email is None:
+                    continue
+                lease = cfg_notify.email.timeout_seconds * 3 + 60
+            else:
+                hook = hooks.get(row["destination"])
+                if hook is None:
+                    continue
+                lease = (hook.timeout_seconds + 2.0) * hook.max_attempts + 60
+            claimed = _claim(engine, row["id"], me, clock(), lease, due=row["id"] not in now_ids)
+            if claimed is None:
+                leased += 1
                 continue
+            row = claimed
             attempted += 1
-            message = json.loads(row["payload"])
-            tries, error = 0, None
-            for i in range(hook.max_attempts):
-                tries += 1
-                try:
-                    body = render_body(message, hook)
-                    n_requests += 1
-                    post_webhook(hook, body, row["idempotency_key"], session=own)
-                    error = None
-                    break
-                except ConfigError as exc:
-                    error = str(exc)
-                    break  # retrying at once cannot fix a template or a missing secret
-                except MonitorError as exc:
-                    error = str(exc)
-                    if i + 1 < hook.max_attempts:
-                        sleep(min(0.25 * 2**i, 2.0))
+            if row["channel"] == "email":
+                tries, error, retry_after = _send_email(row, cfg_notify.email)
+            else:
+                tries, error, retry_after = _send_webhook(row, hook, own, sleep)
+            n_requests += tries
             at = clock()
+            mine = sa.and_(outbox.c.id == row["id"], outbox.c.lease_owner == me)
             with engine.begin() as conn:
                 if error is None:
-                    conn.execute(sa.update(outbox).where(outbox.c.id == row["id"]).values(
-                        delivered_at=at, attempts=row["attempts"] + tries, last_error=None))
+                    conn.execute(sa.update(outbox).where(mine).values(
+                        delivered_at=at, attempts=row["attempts"] + tries, last_error=None,
+                        lease_owner=None, lease_expires_at=None))
                     delivered += 1
-                else:
-                    rounds = row["failed_rounds"] + 1
-                    nxt = at + timedelta(seconds=backoff_seconds(rounds, cfg_notify, rng))
-                    conn.execute(sa.update(outbox).where(outbox.c.id == row["id"]).values(
-                        attempts=row["attempts"] + tries, failed_rounds=rounds, last_error=error[:2000],
-                        next_attempt_at=nxt))
-                    failed += 1
-                    errors.append(error)
-                    log.warning("%s; retry after %s UTC", error, f"{nxt:%Y-%m-%d %H:%M:%S}")
+                    continue
+                rounds = row["failed_rounds"] + 1
+                wait = (min(retry_after, cfg_notify.retry_max_seconds) if retry_after is not None
+                        else backoff_seconds(rounds, cfg_notify, rng))
+                nxt = at + timedelta(seconds=wait)
+                conn.execute(sa.update(outbox).where(mine).values(
+                    attempts=row["attempts"] + tries, failed_rounds=rounds, last_error=error[:2000],
+                    next_attempt_at=nxt, lease_owner=None, lease_expires_at=None))
+            failed += 1
+            errors.append(error)
+            log.warning("%s; retry after %s UTC", error, f"{nxt:%Y-%m-%d %H:%M:%S}")
+        with engine.connect() as conn:
+            left = conn.execute(sa.select(outbox.c.channel, outbox.c.destination).where(open_rows)).all()
+    except SQLAlchemyError as exc:
+        raise _store_error(engine, exc) from exc
     finally:
         if session is None:
             own.close()
-    with engine.connect() as conn:
-        left = conn.execute(sa.select(outbox.c.destination).where(outbox.c.delivered_at.is_(None))).scalars().all()
-    orphaned = sum(1 for d in left if d not in hooks)
+    orphaned = sum(1 for ch, d in left if (d not in hooks if ch == "webhook" else cfg_notify.email is None))
     if orphaned:
-        log.warning("%d queued message(s) are for webhooks no longer in the config; they stay queued", orphaned)
-    return DeliveryReport(attempted, delivered, failed, n_requests, len(left), orphaned, tuple(errors))
+        log.warning("%d queued message(s) are for destinations no longer in the config; they stay queued", orphaned)
+    return DeliveryReport(attempted, delivered, failed, n_requests, len(left), orphaned, tuple(errors), leased, expired)
 
 
 def pending_messages(engine: Engine) -> list[dict[str, Any]]:
-    """Undelivered messages (oldest first), without their payload."""
+    """Undelivered webhook messages (oldest first), without their payload."""
     ensure_notify_tables(engine)
     cols = [outbox.c.id, outbox.c.idempotency_key, outbox.c.destination, outbox.c.created_at, outbox.c.attempts,
             outbox.c.next_attempt_at, outbox.c.last_error]
     with engine.connect() as conn:
-        return [dict(r) for r in conn.execute(sa.select(*cols).where(outbox.c.delivered_at.is_(None))
-                                              .order_by(outbox.c.id)).mappings()]
+        return [dict(r) for r in conn.execute(sa.select(*cols).where(
+            outbox.c.delivered_at.is_(None), outbox.c.expired_at.is_(None), outbox.c.channel == "webhook")
+            .order_by(outbox.c.id)).mappings()]
+
+
+def insert_email(conn: Connection, key: str, recipient: str, message: dict[str, Any], at: datetime,
+                 deadline: datetime) -> None:
+    """Queue one digest e-mail for one recipient (``message`` as :func:`monitor.digest.send_prepared` takes it)."""
+    conn.execute(sa.insert(outbox).values(
+        idempotency_key=key, channel="email", destination=recipient[:128],
+        payload=json.dumps(message, sort_keys=True, ensure_ascii=False), created_at=at, attempts=0,
+        failed_rounds=0, next_attempt_at=at, delivered_at=None, last_error=None, deadline_at=deadline))
+
+
+def expire_digests(engine: Engine, cfg_notify: NotifyConfig, *, clock: Callable[[], datetime] = _now) -> int:
+    """Close the digest e-mails still undelivered at their deadline and queue one
+    "digest undelivered" monitor-health notice per day on every webhook.
+
+    Returns the number of e-mails closed. A row leased by a deliverer right now
+    is left to that deliverer.
+    """
+    now = clock()
+    with engine.begin() as conn:
+        rows = conn.execute(sa.select(outbox.c.id, outbox.c.payload, outbox.c.last_error, outbox.c.deadline_at).where(
+            outbox.c.channel == "email", outbox.c.delivered_at.is_(None), outbox.c.expired_at.is_(None),
+            outbox.c.deadline_at <= now,
+            sa.or_(outbox.c.lease_owner.is_(None), outbox.c.lease_expires_at <= now))).mappings().all()
+        if not rows:
+            return 0
+        conn.execute(sa.update(outbox).where(outbox.c.id.in_([r["id"] for r in rows])).values(
+            expired_at=now, lease_owner=None, lease_expires_at=None))
+        by_day: dict[tuple[str, str], list[Mapping[str, Any]]] = {}
+        for r in rows:
+            m = json.loads(r["payload"])
+            by_day.setdefault((m["day"], m["message_id"]), []).append({**m, "last_error": r["last_error"],
+                                                                       "deadline_at": r["deadline_at"]})
+        for (day, message_id), lost in sorted(by_day.items()):
+            who = sorted(m["recipient"] for m in lost)
+            last = next((m["last_error"] for m in lost if m["last_error"]), "no attempt was possible")
+            header = (f"expwatch could not deliver the digest of {day} to {len(who)} recipient(s) by its deadline "
+                      f"({lost[0]['deadline_at']:%Y-%m-%d %H:%M} UTC): {', '.join(who)}. Last error: {last}")
+            log.error("%s", header, extra={"event": "digest_undelivered"})
+            for hook in cfg_notify.webhooks:
+                key = _key("digest_undelivered", hook.name, message_id, who)
+                if not conn.execute(sa.select(outbox.c.id).where(outbox.c.idempotency_key == key)).first():
+                    _insert(conn, key, hook.name, {"format": "expwatch.notice/1", "kind": "digest_undelivered",
+                                                   "run_id": None, "as_of": _iso(now), "header": header,
+                                                   "lines": [], "events": [], "day": day}, now)
+        return len(rows)
+
+
+def next_email_attempt(engine: Engine) -> datetime | None:
+    """When the next undelivered digest e-mail is due (its retry or its deadline, whichever is first)."""
+    ensure_notify_tables(engine)
+    with engine.connect() as conn:
+        rows = conn.execute(sa.select(outbox.c.next_attempt_at, outbox.c.deadline_at).where(
+            outbox.c.channel == "email", outbox.c.delivered_at.is_(None), outbox.c.expired_at.is_(None))).all()
+    times = [min(t for t in r if t is not None) for r in rows]
+    return min(times) if times else None
 
 
 # -- monitor health --------------------------------------------------------------------
+#
+# Every cycle takes a number from a counter in the state store when it starts
+# (:func:`begin_cycle`, one transaction that holds the store's write lock). The
+# health record keeps the highest number of a failed cycle and of a successful
+# one: the monitor is failing while the former is the larger. So a cycle that
+# started before the latest failure cannot declare recovery, however late it
+# commits, and an outage (a spell of failing) is named by the number of the cycle
+# that opened it, which is what the notices' idempotency keys are made of.
 
-def _health_notice(conn: Connection, cfg_notify: NotifyConfig, kind: str, since: datetime, header: str, at: datetime) -> int:
+def _locked_state(conn: Connection, key: str, at: datetime) -> dict[str, Any]:
+    """Read a state row after taking its write lock (SQLite: the database's; others: the row's)."""
+    touch = sa.update(notify_state).where(notify_state.c.key == key).values(updated_at=at)
+    if conn.execute(touch).rowcount == 0:
+        try:
+            with conn.begin_nested():
+                conn.execute(sa.insert(notify_state).values(key=key, value="{}", updated_at=at))
+        except IntegrityError:  # inserted by another process meanwhile
+            conn.execute(touch)
+    return get_state(conn, key) or {}
+
+
+def _next_cycle(conn: Connection, at: datetime) -> int:
+    n = int(_locked_state(conn, "cycles", at).get("last", 0)) + 1
+    set_state(conn, "cycles", {"last": n}, at)
+    return n
+
+
+def begin_cycle(engine: Engine, *, clock: Callable[[], datetime] = _now) -> int:
+    """Take the next cycle number; call it when a cycle starts, before it reads anything.
+
+    Raises
+    ------
+    StateError
+        The state store cannot be written.
+    """
+    try:
+        ensure_notify_tables(engine)
+        with engine.begin() as conn:
+            return _next_cycle(conn, clock())
+    except SQLAlchemyError as exc:
+        from monitor.state import _first
+        from monitor.warehouse import safe_url
+
+        raise StateError(f"state store {safe_url(engine.url)}: cannot start a cycle: {_first(exc)}") from exc
+
+
+def _health(st: dict[str, Any]) -> dict[str, Any]:
+    """The health record, upgrading one written before cycle numbers existed."""
+    if "failed_cycle" in st:
+        return st
+    failing = st.get("state") == "failing"
+    return {**st, "failed_cycle": 1 if failing else 0, "ok_cycle": 0, "outage": 1 if failing else None}
+
+
+def _health_for(conn: Connection, cycle: int | None, at: datetime) -> tuple[dict[str, Any], int, bool]:
+    """The health record (write-locked), the cycle's number and whether the monitor was failing."""
+    st = _health(_locked_state(conn, "health", at))
+    n = cycle if cycle is not None else _next_cycle(conn, at)
+    return st, n, st["failed_cycle"] > st["ok_cycle"]
+
+
+def _health_notice(conn: Connection, cfg_notify: NotifyConfig, kind: str, outage: str, header: str, at: datetime) -> int:
     n = 0
     for hook in cfg_notify.webhooks:
-        key = _key(kind, hook.name, _iso(since))
+        key = _key(kind, hook.name, outage)
         if conn.execute(sa.select(outbox.c.id).where(outbox.c.idempotency_key == key)).first():
             continue
         _insert(conn, key, hook.name, {"format": "expwatch.notice/1", "kind": kind, "run_id": None, "as_of": _iso(at),
-                                       "header": header, "lines": [], "events": []}, at)
+                                       "header": header, "lines": [], "events": [], "outage": outage}, at)
         n += 1
     return n
 
 
-def record_failure(engine: Engine, message: str, cfg_notify: NotifyConfig, *,
+def _outage_id(st: dict[str, Any]) -> str:
+    return _key("outage", st.get("outage"), st.get("since"))[:16]
+
+
+def record_failure(engine: Engine, message: str, cfg_notify: NotifyConfig, *, cycle: int | None = None,
                    clock: Callable[[], datetime] = _now) -> bool:
-    """Note that a run of expwatch failed; True when this is the first failure
-    since the monitor was last healthy (a "monitor failing" notice was queued).
+    """Note that a run of expwatch failed; True when this failure opened an outage
+    (a "monitor failing" notice was queued).
+
+    Parameters
+    ----------
+    cycle
+        The failed cycle's number from :func:`begin_cycle` (None: a fresh number,
+        as if the cycle had started now).
 
     Notes
     -----
     Later failures only update the stored message, so an hourly job that keeps
-    failing sends one notice, not one per hour. If the state store itself cannot
-    be written the failure is logged and False is returned (nothing else can be
-    done from here; the heartbeat stops, which an outside watcher notices).
+    failing sends one notice, not one per hour. A failure of a cycle that started
+    before the latest successful one opens no outage (the monitor has worked
+    since). If the state store itself cannot be written the failure is logged as
+    an error and False is returned: it cannot be recorded in the store that
+    failed; the heartbeat stops and the metrics file's
+    ``expwatch_last_attempt_success`` gauge is 0, which outside watchers notice.
     """
     now = clock()
     text = " ".join(str(message).split())[:500]
     try:
         ensure_notify_tables(engine)
         with engine.begin() as conn:
-            st = get_state(conn, "health") or {"state": "ok"}
-            if st.get("state") == "failing":
-                set_state(conn, "health", {**st, "last_error": text, "last_failure_at": _iso(now),
-                                           "failures": int(st.get("failures", 1)) + 1}, now)
+            st, n, was_failing = _health_for(conn, cycle, now)
+            st = {**st, "failed_cycle": max(st["failed_cycle"], n), "last_error": text, "last_failure_at": _iso(now)}
+            if was_failing or st["failed_cycle"] <= st["ok_cycle"]:
+                if was_failing:
+                    st["failures"] = int(st.get("failures", 1)) + 1
+                set_state(conn, "health", st, now)
                 return False
-            set_state(conn, "health", {"state": "failing", "since": _iso(now), "last_error": text,
-                                       "last_failure_at": _iso(now), "failures": 1}, now)
+            st.update({"state": "failing", "since": _iso(now), "outage": n, "failures": 1})
+            set_state(conn, "health", st, now)
             header = (f"expwatch is failing since {now:%Y-%m-%d %H:%M} UTC: {text}. Checks are not being computed "
                       "until it recovers; one notice is sent when it does.")
-            _health_notice(conn, cfg_notify, "monitor_failing", now, header, now)
+            _health_notice(conn, cfg_notify, "monitor_failing", _outage_id(st), header, now)
             return True
     except SQLAlchemyError as exc:
-        log.warning("could not record the monitor failure in the state store: %s", type(exc).__name__)
+        from monitor.state import _first
+
+        log.error("could not record the monitor failure in the state store: %s", _first(exc),
+                  extra={"event": "state_write_failed"})
         return False
 
 
-def record_success(engine: Engine, cfg_notify: NotifyConfig, *, clock: Callable[[], datetime] = _now) -> bool:
-    """Note a successful run; True when it ends a failing spell (a recovery notice was queued)."""
+def record_success(engine: Engine, cfg_notify: NotifyConfig, *, cycle: int | None = None,
+                   clock: Callable[[], datetime] = _now) -> bool:
+    """Note a successful run; True when it ends an outage (a recovery notice was queued).
+
+    A cycle whose number (``cycle``, from :func:`begin_cycle`) is lower than the
+    latest failed cycle's started before that failure and ends nothing.
+    """
     now = clock()
-    ensure_notify_tables(engine)
-    with engine.begin() as conn:
-        st = get_state(conn, "health")
-        if not st or st.get("state") != "failing":
-            return False
-        since = datetime.fromisoformat(st["since"].replace("Z", "+00:00"))
-        set_state(conn, "health", {"state": "ok", "since": _iso(now)}, now)
-        header = (f"expwatch recovered at {now:%Y-%m-%d %H:%M} UTC after failing since {since:%Y-%m-%d %H:%M} UTC "
-                  f"({int(st.get('failures', 1))} failed run(s); last error: {st.get('last_error', '')})")
-        _health_notice(conn, cfg_notify, "monitor_recovered", since, header, now)
-        return True
+    try:
+        ensure_notify_tables(engine)
+        with engine.begin() as conn:
+            st, n, was_failing = _health_for(conn, cycle, now)
+            st["ok_cycle"] = max(st["ok_cycle"], n)
+            if not was_failing or st["failed_cycle"] > st["ok_cycle"]:
+                set_state(conn, "health", st, now)
+                return False
+            since = datetime.fromisoformat(st["since"].replace("Z", "+00:00"))
+            outage = _outage_id(st)
+            header = (f"expwatch recovered at {now:%Y-%m-%d %H:%M} UTC after failing since {since:%Y-%m-%d %H:%M} UTC "
+                      f"({int(st.get('failures', 1))} failed run(s); last error: {st.get('last_error', '')})")
+            set_state(conn, "health", {**st, "state": "ok", "since": _iso(now)}, now)
+            _health_notice(conn, cfg_notify, "monitor_recovered", outage, header, now)
+            return True
+    except SQLAlchemyError as exc:
+        raise _store_error(engine, exc) from exc
 
 
 def send_heartbeat(cfg_notify: NotifyConfig, *, session: requests.Session | None = None) -> bool | None:
@@ -540,5 +802,3 @@ def send_heartbeat(cfg_notify: NotifyConfig, *, session: requests.Session | None
     from monitor.notify import ping_heartbeat
 
     return ping_heartbeat(cfg_notify.heartbeat_url, session=session)
-
-

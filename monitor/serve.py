@@ -8,6 +8,12 @@ cycle calls :func:`monitor.cycle.run_cycle` with ``wait_seconds=0``, so the
 lock in the state store keeps a scheduler and a cron-started ``expwatch run``
 from overlapping: the one that finds the lock taken logs and skips.
 
+A digest that could not be delivered to every recipient stays queued in the
+outbox; the scheduler adds a one-off ``digest-retry`` job at the time its next
+attempt (or its deadline) is due, and again after each retry, until every
+recipient has it or the deadline closes it (see :func:`monitor.digest.run_digest`).
+Undelivered digest e-mails found when the scheduler starts are retried the same way.
+
 SIGTERM or SIGINT stops the scheduler: no new cycle starts, the one running is
 allowed to finish (its work is one transaction, so even a hard kill leaves all
 or nothing), and the process exits 0.
@@ -25,9 +31,11 @@ from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from typing import Any
 
+from sqlalchemy.exc import SQLAlchemyError
+
 from monitor.serve_config import ScheduleConfig, parse_cron, schedule_of
 
-__all__ = ["CycleOutcome", "Server", "check_job", "digest_job", "serve"]
+__all__ = ["CycleOutcome", "Server", "check_job", "digest_job", "digest_retry_job", "serve"]
 
 log = logging.getLogger("monitor")
 
@@ -134,7 +142,7 @@ def digest_job(cfg: Any, *, module: str = "monitor.digest") -> CycleOutcome:
         log.warning(out.message, extra={"event": "digest_skipped"})
         return out
     try:
-        fn(cfg)
+        sent = fn(cfg)
     except MonitorError as exc:
         out = CycleOutcome("digest", "failed", None, time.monotonic() - t0, f"digest failed: {exc}")
         log.error(out.message, extra={"event": "digest_failed"})
@@ -143,9 +151,35 @@ def digest_job(cfg: Any, *, module: str = "monitor.digest") -> CycleOutcome:
         out = CycleOutcome("digest", "failed", None, time.monotonic() - t0, f"digest failed: internal error: {type(exc).__name__}: {exc}")
         log.exception(out.message, extra={"event": "digest_failed"})
         return out
-    out = CycleOutcome("digest", "ok", None, time.monotonic() - t0, f"digest sent in {time.monotonic() - t0:.2f}s")
+    what = (f"digest {sent.day}: {'already delivered' if sent.already else 'sent'} to {len(sent.delivered)} "
+            f"recipient(s): {sent.subject}" if hasattr(sent, "subject") and hasattr(sent, "delivered") else "digest sent")
+    out = CycleOutcome("digest", "ok", None, time.monotonic() - t0, f"{what} ({time.monotonic() - t0:.2f}s)")
     log.info(out.message, extra={"event": "digest"})
     return out
+
+
+def digest_retry_job(cfg: Any) -> tuple[CycleOutcome, datetime | None]:
+    """Retry the undelivered digest e-mails that are due; returns the outcome and when
+    the next retry (or deadline) is due (None: nothing is left). Never raises."""
+    from monitor.digest import retry_digest
+    from monitor.errors import MonitorError
+
+    t0 = time.monotonic()
+    try:
+        nxt = retry_digest(cfg)
+    except MonitorError as exc:
+        out = CycleOutcome("digest", "failed", None, time.monotonic() - t0, f"digest retry failed: {exc}")
+        log.error(out.message, extra={"event": "digest_failed"})
+        return out, None
+    except Exception as exc:
+        out = CycleOutcome("digest", "failed", None, time.monotonic() - t0,
+                           f"digest retry failed: internal error: {type(exc).__name__}: {exc}")
+        log.exception(out.message, extra={"event": "digest_failed"})
+        return out, None
+    msg = "digest retry done" + (f"; next attempt at {nxt:%Y-%m-%d %H:%M:%S} UTC" if nxt else "; nothing left to send")
+    out = CycleOutcome("digest", "ok" if nxt is None else "failed", None, time.monotonic() - t0, msg)
+    log.info(out.message, extra={"event": "digest_retry"})
+    return out, nxt
 
 
 @dataclass
@@ -198,6 +232,40 @@ class Server:
 
     def _run_digest(self) -> None:
         self._record((self.digest or digest_job)(self.cfg))
+        self._schedule_digest_retry()
+
+    def _run_digest_retry(self) -> None:
+        out, nxt = digest_retry_job(self.cfg)
+        self._record(out)
+        self._schedule_digest_retry(nxt)
+
+    def _schedule_digest_retry(self, at: datetime | None = None) -> None:
+        """Add (or move) the one-off ``digest-retry`` job to when the next undelivered
+        digest e-mail is due; no job when none is left or the store cannot tell."""
+        from apscheduler.triggers.date import DateTrigger
+
+        if getattr(getattr(self.cfg, "notify", None), "email", None) is None:
+            return
+        if at is None:
+            from monitor.errors import MonitorError
+            from monitor.outbox import next_email_attempt
+            from monitor.state import StateStore
+
+            try:
+                state = StateStore(self.cfg.state.url or "")
+                try:
+                    at = next_email_attempt(state.engine)
+                finally:
+                    state.dispose()
+            except (MonitorError, SQLAlchemyError) as exc:
+                log.error("digest retry not scheduled: %s", exc, extra={"event": "digest_failed"})
+                return
+        if at is None:
+            return
+        at = max(at, datetime.now(timezone.utc))
+        self.scheduler.add_job(self._run_digest_retry, DateTrigger(run_date=at), id="digest-retry",
+                               name="digest retry", replace_existing=True, misfire_grace_time=None)
+        log.info("digest retry scheduled at %s UTC", f"{at:%Y-%m-%d %H:%M:%S}", extra={"event": "digest_retry_scheduled"})
 
     def next_runs(self) -> dict[str, datetime | None]:
         """The next fire time of each job (aware UTC); only after :meth:`start`."""
@@ -205,6 +273,7 @@ class Server:
 
     def start(self) -> None:
         self.scheduler.start()
+        self._schedule_digest_retry()
         nxt = self.next_runs()
         how = (f"every {self.schedule.interval_seconds}s" if self.schedule.interval_seconds
                else f"on '{self.schedule.checks}' ({getattr(self.cfg, 'timezone', 'UTC')})")

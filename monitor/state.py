@@ -197,7 +197,15 @@ def _migration_4(conn: Connection) -> None:
     metadata.create_all(conn, tables=[query_costs])
 
 
-MIGRATIONS: list[Callable[[Connection], None]] = [_migration_1, _migration_2, _migration_3, _migration_4]
+def _migration_5(conn: Connection) -> None:
+    """Outbox leases (owner, expiry), digest delivery deadlines and expiry, and the
+    cycle counter that orders monitor-health decisions (monitor/outbox.py)."""
+    from monitor.outbox import migration_delivery_leases
+
+    migration_delivery_leases(conn)
+
+
+MIGRATIONS: list[Callable[[Connection], None]] = [_migration_1, _migration_2, _migration_3, _migration_4, _migration_5]
 SCHEMA_VERSION = len(MIGRATIONS)
 
 
