@@ -9,9 +9,9 @@ for each pipeline stage, as pulled by :mod:`monitor.pull`. Checks:
     anytime-valid Dirichlet-multinomial e-process (:func:`monitor.stats.allocation.srm_sequential`),
     evaluated at every hour since the experiment started, so hourly monitoring does
     not inflate false alarms; phases multiply. The ``warn`` is driven by the same
-    e-process: its current value at or above 1/sqrt(alpha) (32 at alpha 0.001), a
-    level a correct split ever reaches with probability at most sqrt(alpha) however
-    often it is looked at (Ville's inequality for a test martingale; Ramdas,
+    e-process: it has reached ``srm_warn_e_value`` (default 1/sqrt(alpha), 32 at alpha
+    0.001) at some look, a level a correct split ever reaches with probability at
+    most sqrt(alpha) however often it is looked at (Ville's inequality for a test martingale; Ramdas,
     Grünwald, Vovk & Shafer, "Game-theoretic statistics and safe anytime-valid
     inference", Statistical Science, 2023, arXiv:2210.01948). The fixed-horizon Pearson chi-square is
     reported beside it as information only: re-applied at every hourly look its
@@ -236,6 +236,8 @@ def _srm_findings(
     ph_ff = np.where(ph_ff == 0, 1, ph_ff)
     conc = tuple(cfg.srm_prior_concentrations) if cfg.srm_prior_concentrations else DEFAULT_CONCENTRATIONS
     seq = srm_sequential(inc, w, ph_ff, alpha=cfg.alpha, concentrations=conc)
+    warn_e = cfg.srm_warn_e_value or 1.0 / math.sqrt(cfg.alpha)
+    log_warn = math.log(warn_e)
 
     out: list[Finding] = []
     for i, e in enumerate(exps):
@@ -256,7 +258,9 @@ def _srm_findings(
             "units_outside_phases": int(outside[i]),
             "alpha": cfg.alpha,
             "threshold_e_value": 1.0 / cfg.alpha,
-            "warn_e_value": 1.0 / math.sqrt(cfg.alpha),
+            "warn_e_value": warn_e,
+            "warn_reached_at": (t0s[i] + HOUR * (int(np.argmax(seq.log_e[i] >= log_warn)) + 1)
+                                if seq.log_e_max[i] >= log_warn else None),
             "log_e_value": float(seq.log_e_final[i]),
             "log_e_value_max": float(seq.log_e_max[i]),
             "e_value": math.exp(min(seq.log_e_final[i], 700.0)) if seq.log_e_final[i] < 700 else None,
@@ -302,11 +306,11 @@ def _srm_findings(
             )
             out.append(Finding(e.id, "srm", source, "alert", summary, stats, phase_no,
                                critical=worst_dev >= cfg.srm_critical_deviation))
-        elif seq.log_e_final[i] >= 0.5 * math.log(1.0 / cfg.alpha):
+        elif seq.log_e_max[i] >= log_warn:
             summary = (
-                f"possible SRM at {where}: the always-valid e-value is {_fmt_e(seq.log_e_final[i])}, past the warn level "
-                f"1/sqrt(alpha)={1 / math.sqrt(cfg.alpha):,.0f} but short of the {1 / cfg.alpha:,.0f} an alert needs; "
-                f"chi-square p={_fmt_p(p_comb)} (one look, for information)"
+                f"possible SRM at {where}: the always-valid e-value reached the warn level {warn_e:,.0f} at "
+                f"{stats['warn_reached_at']:%Y-%m-%d %H:%M} UTC (now {_fmt_e(seq.log_e_final[i])}) but not yet the "
+                f"{1 / cfg.alpha:,.0f} an alert needs; chi-square p={_fmt_p(p_comb)} (one look, for information)"
             )
             out.append(Finding(e.id, "srm", source, "warn", summary, stats, phase_no))
         else:
@@ -314,8 +318,7 @@ def _srm_findings(
             note = ""
             if worst_p < cfg.alpha:
                 note = (f"; the one-look chi-square p={_fmt_p(worst_p)} is below alpha, but under hourly looks that "
-                        f"happens to correct splits too, and the e-value has not reached the warn level "
-                        f"{1 / math.sqrt(cfg.alpha):,.0f}")
+                        f"happens to correct splits too, and the e-value has not reached the warn level {warn_e:,.0f}")
             summary = (
                 f"split as designed at {where} (n={n_all:,}, e-value {_fmt_e(seq.log_e_final[i])}, "
                 f"chi-square p={_fmt_p(p_comb)}){note}"

@@ -173,6 +173,8 @@ class CheckConfig(_Model):
     alpha: Annotated[float, Field(gt=0, lt=0.5)] = 0.001
     srm_prior_concentrations: list[Annotated[float, Field(gt=0)]] | None = None
     srm_min_units: Annotated[int, Field(ge=0)] = 100
+    srm_warn_e_value: Annotated[float, Field(gt=1)] | None = None
+    """SRM warn once the e-value has reached this (null: 1/sqrt(alpha)); a correct split ever does with probability <= 1/this."""
     leakage_warn_share: Annotated[float, Field(ge=0, le=1)] = 0.001
     leakage_alert_share: Annotated[float, Field(ge=0, le=1)] = 0.01
     unknown_variant_alert_share: Annotated[float, Field(ge=0, le=1)] = 0.01

@@ -204,5 +204,24 @@ def test_srm_warn_rate_on_correct_splits_is_bounded_under_hourly_looks():
     srm = _find(allocation_findings([e], {"assigned": _frame("x", inc[i], e.variants)}, "assigned", T0 + looks * H,
                                     CheckConfig(alpha=alpha)), "x", "srm")
     assert srm.statistics["log_e_value"] == pytest.approx(res.log_e_final[i], abs=1e-9)
-    expected = ("alert" if res.crossed[i] else "warn" if res.log_e_final[i] >= warn_level else "ok")
+    expected = ("alert" if res.crossed[i] else "warn" if res.log_e_max[i] >= warn_level else "ok")
     assert srm.status == expected
+
+
+def test_srm_warn_stays_once_the_level_is_reached_and_the_level_is_configurable():
+    """Ville's inequality bounds the chance that the e-value *ever* reaches the level, so the
+    warn stands once it has (like the alert once 1/alpha is passed) even when a later,
+    balanced hour lowers the current e-value: hour 0 is 10,300 vs 9,700 (e-value 352), hour 1
+    adds 20,000 vs 20,000."""
+    e = Experiment("x", "control", ("control", "treatment"), (Phase(1, T0, None, {"control": 0.5, "treatment": 0.5}),))
+    rows = np.array([[10_300, 9_700], [20_000, 20_000]])
+    srm = _find(allocation_findings([e], {"assigned": _frame("x", rows, e.variants)}, "assigned", T0 + 2 * H,
+                                    CheckConfig()), "x", "srm")
+    assert math.exp(srm.statistics["log_e_value"]) < 32 <= math.exp(srm.statistics["log_e_value_max"])
+    assert srm.status == "warn" and srm.statistics["warn_reached_at"] == T0 + H
+    assert "reached the warn level 32 at 2026-10-01 01:00 UTC" in srm.summary
+    # a lower configured level: 10,240 vs 9,760 (e-value 19) warns at 10, not at 32
+    one = _one_hour(e, 10_240, 9_760)
+    assert _find(allocation_findings([e], {"assigned": one}, "assigned", T0 + H, CheckConfig()), "x", "srm").status == "ok"
+    low = _find(allocation_findings([e], {"assigned": one}, "assigned", T0 + H, CheckConfig(srm_warn_e_value=10)), "x", "srm")
+    assert low.status == "warn" and low.statistics["warn_e_value"] == 10

@@ -38,6 +38,7 @@ def test_good_config_resolves_relative_paths(tmp_path):
     (GOOD + "timezone: Mars/Olympus\n", r"timezone: unknown time zone 'Mars/Olympus'"),
     ("warehouse: [1, 2\n", r"not valid YAML at line"),
     ("- just a list\n", r"must hold a mapping"),
+    (GOOD + "checks: {srm_warn_e_value: 1}\n", r"checks.srm_warn_e_value: Input should be greater than 1"),
     (GOOD + "checks: {episode_clear_hours: -1}\n", r"checks.episode_clear_hours: Input should be greater than or equal to 0"),
 ])
 def test_bad_config_messages(tmp_path, text, message):
