@@ -24,7 +24,6 @@ from __future__ import annotations
 import argparse
 import json
 import sys
-import time
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
 
@@ -90,7 +89,6 @@ def main(argv: list[str] | None = None) -> int:
         cfg = cfg.model_copy(update={"checks": cfg.checks.model_copy(update={"episode_clear_hours": args.clear_hours})})
     planted = [p for p in summary.planted if p.check != "effect"]
     onsets = {(p.experiment, p.check): p.onset for p in planted if p.onset is not None}
-    t0 = time.monotonic()
     if args.saved:
         doc = json.loads(Path(args.saved).read_text(encoding="utf-8"))
     else:
