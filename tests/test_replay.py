@@ -209,3 +209,21 @@ def test_quietness_counts_flaps_and_reopenings():
     assert q["srm"] == CheckQuietness("srm", episodes=4, flaps=2, reopened=1, returns=2)
     assert q["leakage"] == CheckQuietness("leakage", episodes=2, flaps=1, reopened=0, returns=1)
     assert list(q) == ["leakage", "srm"]
+
+
+@pytest.mark.slow
+def test_quietness_bench_script_runs(demo, capsys, tmp_path):
+    """The quietness benchmark (tests/bench/quietness.py) end to end on two days of the demo
+    (figures are not asserted), and again on the JSON it saved."""
+    from tests.bench.quietness import main as bench
+
+    saved = tmp_path / "replay.json"
+    args = ["--dir", str(demo["dir"]), "--from", "2026-11-28T09:00Z", "--to", "2026-11-30T09:00Z", "--allocation-only"]
+    assert bench([*args, "--json", str(saved)]) == 0
+    out = capsys.readouterr().out
+    assert out.startswith("replay 2026-11-28T09:00 .. 2026-11-30T09:00 every 1h: 49 steps")
+    for line in ("episodes with no planted problem:", "their keys (experiment, check, scope) with exactly one episode:",
+                 "episodes reopened within 24 h of the previous close:", "quietness (clear span 24 h):"):
+        assert line in out
+    assert bench(["--dir", str(demo["dir"]), "--saved", str(saved)]) == 0
+    assert capsys.readouterr().out == out
