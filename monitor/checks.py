@@ -8,11 +8,18 @@ for each pipeline stage, as pulled by :mod:`monitor.pull`. Checks:
     and tested against that phase's designed weights. The alert is driven by the
     anytime-valid Dirichlet-multinomial e-process (:func:`monitor.stats.allocation.srm_sequential`),
     evaluated at every hour since the experiment started, so hourly monitoring does
-    not inflate false alarms; phases multiply. The fixed-horizon Pearson
-    chi-square is reported beside it. When the chi-square p-value is below alpha
-    but the e-value has not reached 1/alpha, the finding is ``warn`` and says why.
+    not inflate false alarms; phases multiply. The ``warn`` is driven by the same
+    e-process: it has reached ``srm_warn_e_value`` (default 1/sqrt(alpha), 32 at alpha
+    0.001) at some look, a level a correct split ever reaches with probability at
+    most sqrt(alpha) however often it is looked at (Ville's inequality for a test martingale; Ramdas,
+    Grünwald, Vovk & Shafer, "Game-theoretic statistics and safe anytime-valid
+    inference", Statistical Science, 2023, arXiv:2210.01948). The fixed-horizon Pearson chi-square is
+    reported beside it as information only: re-applied at every hourly look its
+    p-value dips below alpha on healthy experiments now and then, so it sets no
+    status.
 ``leakage``
-    Share of units seen in more than one variant (first stage only).
+    Share of units seen in more than one variant (first stage only), against
+    fixed share thresholds (no test, so nothing is re-applied per look).
 ``unknown_variant``
     Units whose variant is NULL or not in the registry (first stage only).
 ``freshness``
@@ -229,6 +236,8 @@ def _srm_findings(
     ph_ff = np.where(ph_ff == 0, 1, ph_ff)
     conc = tuple(cfg.srm_prior_concentrations) if cfg.srm_prior_concentrations else DEFAULT_CONCENTRATIONS
     seq = srm_sequential(inc, w, ph_ff, alpha=cfg.alpha, concentrations=conc)
+    warn_e = cfg.srm_warn_e_value or 1.0 / math.sqrt(cfg.alpha)
+    log_warn = math.log(warn_e)
 
     out: list[Finding] = []
     for i, e in enumerate(exps):
@@ -249,6 +258,9 @@ def _srm_findings(
             "units_outside_phases": int(outside[i]),
             "alpha": cfg.alpha,
             "threshold_e_value": 1.0 / cfg.alpha,
+            "warn_e_value": warn_e,
+            "warn_reached_at": (t0s[i] + HOUR * (int(np.argmax(seq.log_e[i] >= log_warn)) + 1)
+                                if seq.log_e_max[i] >= log_warn else None),
             "log_e_value": float(seq.log_e_final[i]),
             "log_e_value_max": float(seq.log_e_max[i]),
             "e_value": math.exp(min(seq.log_e_final[i], 700.0)) if seq.log_e_final[i] < 700 else None,
@@ -294,18 +306,22 @@ def _srm_findings(
             )
             out.append(Finding(e.id, "srm", source, "alert", summary, stats, phase_no,
                                critical=worst_dev >= cfg.srm_critical_deviation))
-        elif worst_p < cfg.alpha:
+        elif seq.log_e_max[i] >= log_warn:
             summary = (
-                f"possible SRM at {where}: chi-square p={_fmt_p(worst_p)} is below alpha={cfg.alpha:g}, but the "
-                f"always-valid e-value is {_fmt_e(seq.log_e_final[i])} of the {1 / cfg.alpha:,.0f} needed; a one-look "
-                f"p-value overstates the evidence under hourly monitoring, so this is a warning, not an alert yet"
+                f"possible SRM at {where}: the always-valid e-value reached the warn level {warn_e:,.0f} at "
+                f"{stats['warn_reached_at']:%Y-%m-%d %H:%M} UTC (now {_fmt_e(seq.log_e_final[i])}) but not yet the "
+                f"{1 / cfg.alpha:,.0f} an alert needs; chi-square p={_fmt_p(p_comb)} (one look, for information)"
             )
             out.append(Finding(e.id, "srm", source, "warn", summary, stats, phase_no))
         else:
             n_all = int(total_units.sum())
+            note = ""
+            if worst_p < cfg.alpha:
+                note = (f"; the one-look chi-square p={_fmt_p(worst_p)} is below alpha, but under hourly looks that "
+                        f"happens to correct splits too, and the e-value has not reached the warn level {warn_e:,.0f}")
             summary = (
                 f"split as designed at {where} (n={n_all:,}, e-value {_fmt_e(seq.log_e_final[i])}, "
-                f"chi-square p={_fmt_p(p_comb)})"
+                f"chi-square p={_fmt_p(p_comb)}){note}"
             )
             out.append(Finding(e.id, "srm", source, "ok", summary, stats, phase_no))
     return out

@@ -44,6 +44,13 @@ class _Parser(argparse.ArgumentParser):
                   if " " in self.prog else f"expwatch: {message} (see 'expwatch --help')\n")
 
 
+#: The alert ledger's episode rule, as the ledger-facing commands state it (monitor/ledger.py).
+EPISODE_RULE = ("An alert episode opens when a check goes to warn or alert and closes only after the check has been ok "
+                "for checks.episode_clear_hours (default 24 h); a check that fails again within that span continues "
+                "the same episode without a new notification, unless it is more severe than the episode has been "
+                "(escalation is notified at once).")
+
+
 def _build_parser() -> argparse.ArgumentParser:
     p = _Parser(prog="expwatch", description="Trust checks for every live online controlled experiment.")
     p.add_argument("--version", action="version", version=f"expwatch {__version__}")
@@ -106,7 +113,10 @@ def _build_parser() -> argparse.ArgumentParser:
                                     "each alert would have opened, escalated and closed. By default the assignment "
                                     "counts are pulled once and the allocation checks evaluated at every step on the "
                                     "counts as they stood then; metric checks run every --metrics-every. --exact runs "
-                                    "a whole cycle at every step instead (slow).")
+                                    "a whole cycle at every step instead (slow). " + EPISODE_RULE + " A quietness "
+                                    "report follows the table: per check, the episodes, the flaps (closed within 24 h "
+                                    "of opening) and the reopenings (opened within 24 h of the previous close on the "
+                                    "same experiment, check and scope).")
     common(rp)
     rp.add_argument("--from", dest="start", required=True, metavar="TIME", help="first step (ISO 8601)")
     rp.add_argument("--to", dest="end", required=True, metavar="TIME", help="last step (ISO 8601)")
@@ -147,7 +157,8 @@ def _notify_parsers(sub: Any, common: Any) -> None:
 
     al = sub.add_parser("alerts", help="list the open alerts, with mutes and queued notifications",
                         description="List the open alerts from the state store, most severe first, marking muted ones, "
-                                    "and the webhook messages still waiting for delivery.")
+                                    "then the episodes whose finding is clear but not yet for long enough to close, "
+                                    "and the webhook messages still waiting for delivery. " + EPISODE_RULE)
     common(al)
     al.add_argument("--format", choices=["text", "json"], default="text", help="output format (default text)")
 
@@ -337,7 +348,7 @@ def _notify_command(cfg: Config, args: argparse.Namespace, err: Console) -> int:
         if args.command == "digest":
             return _digest(cfg, args, state, err)
         if args.command == "alerts":
-            return _alerts(args, state)
+            return _alerts(args, state, cfg.checks.episode_clear_hours)
         if args.command == "mute":
             return _mute(args, state, err)
         return _unmute(args, state, err)
@@ -391,20 +402,29 @@ def _digest(cfg: Config, args: argparse.Namespace, state: Any, err: Console) -> 
     return 0
 
 
-def _alerts(args: argparse.Namespace, state: Any) -> int:
+def _alerts(args: argparse.Namespace, state: Any, clear_hours: float) -> int:
     import json
+    from datetime import timedelta
 
     from monitor.digest import open_alerts
+    from monitor.findings import SEVERITY_NAMES
     from monitor.outbox import pending_messages
 
     items = open_alerts(state.engine)
     pending = pending_messages(state.engine)
+    clearing = [a for a in state.open_alerts() if a["state"] == "clearing"]
     if args.format == "json":
         doc = {"format": "expwatch.alerts/1", "alerts": [
             {"experiment": a.experiment, "check": a.check, "scope": a.scope, "severity": a.severity, "highest": a.peak,
              "summary": a.summary, "opened_at": a.opened_at.isoformat().replace("+00:00", "Z"),
              "muted_until": a.muted.until.isoformat().replace("+00:00", "Z") if a.muted else None,
              "mute_reason": a.muted.reason if a.muted else None} for a in items],
+            "clearing": [{"experiment": a["experiment"], "check": a["check_name"], "scope": a["scope"],
+                          "highest": SEVERITY_NAMES[a["max_severity"]],
+                          "opened_at": a["opened_at"].isoformat().replace("+00:00", "Z"),
+                          "clear_since": a["updated_at"].isoformat().replace("+00:00", "Z"),
+                          "closes_at": (a["updated_at"] + timedelta(hours=clear_hours)).isoformat().replace("+00:00", "Z")}
+                         for a in clearing],
             "undelivered_notifications": len(pending)}
         sys.stdout.write(json.dumps(doc, indent=2, ensure_ascii=False, allow_nan=False) + "\n")
         return 0
@@ -413,6 +433,14 @@ def _alerts(args: argparse.Namespace, state: Any) -> int:
         mute_note = f" [muted until {a.muted.until:%Y-%m-%d %H:%M} UTC: {a.muted.reason}]" if a.muted else ""
         lines.append(f"{a.severity.upper():8} {a.experiment} · {a.check} · {a.scope}{mute_note}: {a.summary} "
                      f"(open since {a.opened_at:%Y-%m-%d %H:%M} UTC)")
+    if clearing:
+        lines.append(f"{len(clearing)} episode{'s' if len(clearing) != 1 else ''} clear, closing after "
+                     f"{clear_hours:g} h clear unless the check fails again:")
+    for a in clearing:
+        lines.append(f"{'CLEARING':8} {a['experiment']} · {a['check_name']} · {a['scope']}: clear since "
+                     f"{a['updated_at']:%Y-%m-%d %H:%M} UTC, closes at "
+                     f"{a['updated_at'] + timedelta(hours=clear_hours):%Y-%m-%d %H:%M} UTC "
+                     f"(highest {SEVERITY_NAMES[a['max_severity']]}, open since {a['opened_at']:%Y-%m-%d %H:%M} UTC)")
     if pending:
         lines.append(f"{len(pending)} webhook message(s) not delivered yet; oldest from "
                      f"{pending[0]['created_at']:%Y-%m-%d %H:%M} UTC, last error: {pending[-1]['last_error'] or 'not tried yet'}")

@@ -173,6 +173,8 @@ class CheckConfig(_Model):
     alpha: Annotated[float, Field(gt=0, lt=0.5)] = 0.001
     srm_prior_concentrations: list[Annotated[float, Field(gt=0)]] | None = None
     srm_min_units: Annotated[int, Field(ge=0)] = 100
+    srm_warn_e_value: Annotated[float, Field(gt=1)] | None = None
+    """SRM warn once the e-value has reached this (null: 1/sqrt(alpha)); a correct split ever does with probability <= 1/this."""
     leakage_warn_share: Annotated[float, Field(ge=0, le=1)] = 0.001
     leakage_alert_share: Annotated[float, Field(ge=0, le=1)] = 0.01
     unknown_variant_alert_share: Annotated[float, Field(ge=0, le=1)] = 0.01
@@ -180,6 +182,8 @@ class CheckConfig(_Model):
     freshness_baseline_days: Annotated[int, Field(ge=1, le=60)] = 7
     srm_critical_deviation: Annotated[float, Field(gt=0, lt=1)] = 0.1
     critical_factor: Annotated[float, Field(gt=1)] = 5.0
+    episode_clear_hours: Annotated[float, Field(ge=0, le=24 * 90)] = 24.0
+    """Alert ledger: hours a finding must stay ok before its episode closes; one that fails again sooner continues it."""
     guardrail_alpha: Annotated[float, Field(gt=0, lt=0.5)] = _GUARDRAIL_ALPHA
     """Error rate of the guardrail confidence sequences (two-sided)."""
     guardrail_n_star: Annotated[int, Field(ge=2)] = _GUARDRAIL_N_STAR

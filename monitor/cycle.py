@@ -19,7 +19,7 @@ import sqlalchemy as sa
 from sqlalchemy.exc import SQLAlchemyError
 from collections.abc import Callable
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
+from datetime import datetime, timedelta, timezone
 
 from monitor import ledger, outbox
 from monitor.checks import allocation_findings, design_findings
@@ -171,10 +171,13 @@ def run_cycle(
                                  query_seconds={s.name: s.seconds for s in wh.stats},
                                  metric_snapshots=snapshots, check_seconds=timings)
             last = state.last_run_as_of() if not dry_run else None
+            live_ids = [e.id for e in live] + [p.experiment for p in problems]
+            clear_for = timedelta(hours=cfg.checks.episode_clear_hours)
             backtest = any(not s.persist for s in sources) or (last is not None and as_of < last)
             if dry_run:
                 result.note = "dry run: nothing was recorded"
-                result.events = ledger.plan(state.open_alerts(), found, [e.id for e in live] + [p.experiment for p in problems])
+                result.events = ledger.plan(state.open_alerts(), found, live_ids,
+                                            as_of=as_of, clear_for=clear_for)
                 return result
             if backtest:
                 result.note = (f"--as-of is earlier than the latest recorded run ({last:%Y-%m-%d %H:%M} UTC): "
@@ -183,7 +186,8 @@ def run_cycle(
             with state.transaction() as conn:
                 for s in sources:
                     StateStore.replace_counts(conn, s.name, s.since, as_of, s.experiments, s.fresh)
-                events = ledger.plan(state.open_alerts(conn), found, [e.id for e in live] + [p.experiment for p in problems])
+                events = ledger.plan(state.open_alerts(conn), found, live_ids,
+                                     as_of=as_of, clear_for=clear_for)
                 result.events = ledger.apply(conn, run_id, as_of, found, events)
                 if notifying:
                     outbox.enqueue(conn, run_id, as_of, result.events, cfg.notify, live)

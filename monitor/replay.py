@@ -21,16 +21,22 @@ written to the configured store, and nothing is sent):
 
 From the ledger events it reports, per experiment, check and scope, when the
 alert would have opened, escalated and closed, and the detection delay against
-a known onset.
+a known onset. The ledger keeps its episode rule (monitor/ledger.py): an episode
+closes only after its finding has been clear for ``checks.episode_clear_hours``.
+The quietness report counts, per check, the episodes, those that closed within
+a day of opening (flaps) and those that opened within a day of the previous
+episode on the same key closing (reopened), so the noise of a configuration can
+be judged on its own history.
 """
 
 from __future__ import annotations
 
+import itertools
 import logging
 import re
 import tempfile
 import time
-from collections.abc import Callable, Iterator, Mapping
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
@@ -41,13 +47,17 @@ from monitor.errors import ConfigError, MonitorError
 from monitor.findings import SEVERITY_NAMES, Finding
 from monitor.ledger import AlertEvent
 
-__all__ = ["AlertTimeline", "MissedOnset", "ReplayReport", "parse_every", "render_replay_text", "replay", "replay_to_json"]
+__all__ = ["AlertTimeline", "CheckQuietness", "MissedOnset", "ReplayReport", "parse_every", "quietness", "render_replay_text", "replay",
+           "replay_to_json"]
 
 log = logging.getLogger("monitor")
 
 _EVERY_RE = re.compile(r"^\s*(\d+)\s*([mhd])\s*$")
 _UNITS = {"m": "minutes", "h": "hours", "d": "days"}
 MAX_STEPS = 20000
+#: An episode that closes within this long of opening is a flap; one that opens within this
+#: long of the previous episode's close on the same key is a reopening.
+FLAP_WINDOW = timedelta(hours=24)
 
 
 def parse_every(text: str, option: str = "--every") -> timedelta:
@@ -88,6 +98,9 @@ class AlertTimeline:
         supplied onset.
     summary : str
         The finding's summary when it opened.
+    returns : int
+        Times the finding went clear and failed again within the clear span, so the
+        episode went on without a new notification.
     """
 
     experiment: str
@@ -101,6 +114,7 @@ class AlertTimeline:
     onset: datetime | None
     delay_hours: float | None
     summary: str
+    returns: int = 0
 
 
 @dataclass(frozen=True)
@@ -110,6 +124,32 @@ class MissedOnset:
     experiment: str
     check: str | None
     onset: datetime
+
+
+@dataclass(frozen=True)
+class CheckQuietness:
+    """How noisy one check was over the replay.
+
+    Attributes
+    ----------
+    check : str
+    episodes : int
+        Alert episodes (timelines) of the check.
+    flaps : int
+        Episodes that closed within 24 h of opening.
+    reopened : int
+        Episodes that opened within 24 h of the previous episode on the same
+        (experiment, check, scope) closing.
+    returns : int
+        Times a finding went clear and failed again inside an episode (absorbed
+        by the clear span: no new episode, no new notification).
+    """
+
+    check: str
+    episodes: int
+    flaps: int
+    reopened: int
+    returns: int
 
 
 @dataclass(frozen=True)
@@ -132,6 +172,10 @@ class ReplayReport:
         Steps whose cycle (or metric checks) failed, with the one-line reason (the replay goes on).
     mode : str
         ``fast`` or ``cycles``.
+    quietness : tuple of CheckQuietness
+        Per check with at least one episode, ordered by check name.
+    clear_hours : float
+        The ledger's clear span the replay ran with (``checks.episode_clear_hours``).
     """
 
     start: datetime
@@ -143,6 +187,8 @@ class ReplayReport:
     missed: tuple[MissedOnset, ...]
     skipped: tuple[tuple[datetime, str], ...]
     mode: str = "fast"
+    quietness: tuple[CheckQuietness, ...] = ()
+    clear_hours: float = 0.0
 
 
 def _onset_for(onsets: Mapping[Any, datetime], experiment: str, check: str) -> datetime | None:
@@ -250,11 +296,14 @@ def replay(
             sev = SEVERITY_NAMES.get(ev.severity, str(ev.severity))
             if ev.kind == "opened":
                 open_[ev.key] = {"experiment": ev.experiment, "check": ev.check, "scope": ev.scope, "opened_at": as_of,
-                                 "severity_opened": sev, "escalations": [], "max": ev.severity, "summary": ev.summary}
+                                 "severity_opened": sev, "escalations": [], "max": ev.severity, "summary": ev.summary,
+                                 "returns": 0, "clearing": False}
             elif ev.key in open_:
                 a = open_[ev.key]
                 if ev.kind == "escalated":
                     a["escalations"].append((as_of, sev))
+                a["returns"] += int(a["clearing"] and ev.kind in ("returned", "escalated"))
+                a["clearing"] = ev.kind == "cleared"
                 a["max"] = max(a["max"], ev.severity)
                 if ev.kind == "resolved":
                     a["closed_at"] = as_of
@@ -265,15 +314,36 @@ def replay(
         delay = None if onset is None else (a["opened_at"] - onset).total_seconds() / 3600.0
         timelines.append(AlertTimeline(a["experiment"], a["check"], a["scope"], a["opened_at"], a["severity_opened"],
                                        tuple(a["escalations"]), a.get("closed_at"),
-                                       SEVERITY_NAMES.get(a["max"], str(a["max"])), onset, delay, a["summary"]))
+                                       SEVERITY_NAMES.get(a["max"], str(a["max"])), onset, delay, a["summary"],
+                                       a["returns"]))
     timelines.sort(key=lambda t: (t.opened_at, t.experiment, t.check, t.scope))
     missed = []
     for key, onset in sorted(onsets.items(), key=lambda kv: str(kv[0])):
         exp, check = (key if isinstance(key, tuple) else (key, None))
         if not any(t.experiment == exp and (check is None or t.check == check) for t in timelines):
             missed.append(MissedOnset(exp, check, onset))
+    checks_cfg = getattr(cfg, "checks", None)
     return ReplayReport(start, steps[-1], every, n, time.monotonic() - t0, tuple(timelines),
-                        tuple(missed), tuple(skipped), mode)
+                        tuple(missed), tuple(skipped), mode, quietness(timelines),
+                        float(getattr(checks_cfg, "episode_clear_hours", 0.0)))
+
+
+def quietness(timelines: Sequence[AlertTimeline]) -> tuple[CheckQuietness, ...]:
+    """Per check: episodes, flaps (closed within :data:`FLAP_WINDOW` of opening),
+    reopenings (opened within :data:`FLAP_WINDOW` of the previous close on the same key)
+    and returns absorbed inside episodes."""
+    by_check: dict[str, list[int]] = {}
+    last_close: dict[tuple[str, str, str], datetime | None] = {}
+    for t in sorted(timelines, key=lambda t: t.opened_at):
+        row = by_check.setdefault(t.check, [0, 0, 0, 0])
+        key = (t.experiment, t.check, t.scope)
+        before = last_close.get(key)
+        row[0] += 1
+        row[1] += int(t.closed_at is not None and t.closed_at - t.opened_at < FLAP_WINDOW)
+        row[2] += int(before is not None and t.opened_at - before < FLAP_WINDOW)
+        row[3] += t.returns
+        last_close[key] = t.closed_at
+    return tuple(CheckQuietness(c, *row) for c, row in sorted(by_check.items()))
 
 
 def _cycle_events(cfg: Any, steps: list[datetime], skipped: list[tuple[datetime, str]],
@@ -328,7 +398,8 @@ def _fast_events(cfg: Any, steps: list[datetime], metrics_every: timedelta, skip
         open_alerts: dict[str, dict[str, Any]] = {}
         metric_found: list[Finding] = []
         last_metric: datetime | None = None
-        next_id = 1
+        alert_ids = itertools.count(1)
+        clear_for = timedelta(hours=cfg.checks.episode_clear_hours)
         for i, as_of in enumerate(steps):
             if on_step:
                 on_step(i, len(steps), as_of)
@@ -345,19 +416,9 @@ def _fast_events(cfg: Any, steps: list[datetime], metrics_every: timedelta, skip
                     log.warning("replay metric step %s failed: %s", as_of.isoformat(), exc)
             ids = {e.id for e in live}
             found = found + [f for f in metric_found if f.experiment in ids]
-            events = ledger.plan(list(open_alerts.values()), found, [e.id for e in live] + [p.experiment for p in problems])
-            for ev in events:
-                if ev.kind == "opened":
-                    open_alerts[ev.key] = {"key": ev.key, "id": next_id, "experiment": ev.experiment,
-                                           "check_name": ev.check, "scope": ev.scope, "severity": ev.severity,
-                                           "max_severity": ev.severity}
-                    next_id += 1
-                elif ev.kind == "resolved":
-                    open_alerts.pop(ev.key, None)
-                else:
-                    a = open_alerts[ev.key]
-                    a["severity"] = ev.severity
-                    a["max_severity"] = max(a["max_severity"], ev.severity)
+            events = ledger.plan(list(open_alerts.values()), found, [e.id for e in live] + [p.experiment for p in problems],
+                                 as_of=as_of, clear_for=clear_for)
+            ledger.advance(open_alerts, events, as_of, lambda: next(alert_ids))
             yield as_of, found, events
     finally:
         wh.dispose()
@@ -392,6 +453,12 @@ def render_replay_text(report: ReplayReport) -> str:
         delay = "-" if t.delay_hours is None else f"{t.delay_hours:+.0f}h"
         lines.append(f"{t.experiment[:26]:<26} {t.check:<10} {t.scope[:10]:<10} {_fmt(t.opened_at):<16} {esc:<26} "
                      f"{_fmt(t.closed_at) if t.closed_at else 'open':<16} {t.max_severity:<8} {delay}")
+    if report.quietness:
+        lines += ["", (f"quietness (an episode closes after {report.clear_hours:g} h clear; flap: closed within 24 h of "
+                       "opening; reopened: opened within 24 h of the previous close on the same key; returns: failed "
+                       "again while clearing, no new notification)"),
+                  f"{'check':<16} {'episodes':>8} {'flaps':>6} {'reopened':>8} {'returns':>7}"]
+        lines += [f"{q.check:<16} {q.episodes:>8} {q.flaps:>6} {q.reopened:>8} {q.returns:>7}" for q in report.quietness]
     for m in report.missed:
         lines.append(f"missed: {m.experiment}{' · ' + m.check if m.check else ''}: onset {_fmt(m.onset)} UTC, no alert opened")
     for at, why in report.skipped:
@@ -410,8 +477,12 @@ def replay_to_json(report: ReplayReport) -> dict[str, Any]:
                     "severity_opened": t.severity_opened,
                     "escalations": [{"at": iso(a), "severity": s} for a, s in t.escalations],
                     "closed_at": iso(t.closed_at), "max_severity": t.max_severity, "onset": iso(t.onset),
-                    "delay_hours": None if t.delay_hours is None else round(t.delay_hours, 3), "summary": t.summary}
+                    "delay_hours": None if t.delay_hours is None else round(t.delay_hours, 3), "summary": t.summary,
+                    "returns": t.returns}
                    for t in report.timelines],
+        "quietness": {"clear_hours": report.clear_hours, "flap_window_hours": FLAP_WINDOW.total_seconds() / 3600,
+                      "by_check": [{"check": q.check, "episodes": q.episodes, "flaps": q.flaps, "reopened": q.reopened,
+                                    "returns": q.returns} for q in report.quietness]},
         "missed": [{"experiment": m.experiment, "check": m.check, "onset": iso(m.onset)} for m in report.missed],
         "skipped": [{"at": iso(a), "reason": r} for a, r in report.skipped],
     }

@@ -441,7 +441,10 @@ class StateStore:
         return [dict(r) for r in rows]
 
     def open_alerts(self, conn: Connection | None = None) -> list[dict[str, Any]]:
-        stmt = sa.select(alerts).where(alerts.c.state == "open").order_by(alerts.c.opened_at, alerts.c.id)
+        """The alert episodes in progress: ``state`` ``open`` (failing) or ``clearing``
+        (clear, waiting out ``checks.episode_clear_hours`` before it resolves; see monitor/ledger.py)."""
+        stmt = (sa.select(alerts).where(alerts.c.state.in_(("open", "clearing")))
+                .order_by(alerts.c.opened_at, alerts.c.id))
         if conn is not None:
             return [dict(r) for r in conn.execute(stmt).mappings().all()]
         with self.engine.connect() as c:

@@ -2,16 +2,18 @@
 
 from __future__ import annotations
 
+import math
 from datetime import datetime, timedelta, timezone
 
 import numpy as np
 import pandas as pd
 import pytest
+from scipy import stats as sps
 
 from monitor.checks import allocation_findings
 from monitor.config import CheckConfig, RegistryConfig
 from monitor.registry import Experiment, Phase, experiments_from_frame
-from monitor.stats.allocation import chisquare_gof
+from monitor.stats.allocation import chisquare_gof, srm_sequential
 
 UTC = timezone.utc
 T0 = datetime(2026, 10, 1, tzinfo=UTC)
@@ -143,3 +145,83 @@ def test_registry_problems_become_design_findings():
     msgs = {p.experiment: p.message for p in problems}
     assert msgs["bad-sum"] == "phase 1: designed weights sum to 0.9, expected 1"
     assert msgs["two-controls"].startswith("has 2 control variants")
+
+
+def _one_hour(e, control, treatment):
+    return _frame("x", np.array([[control, treatment]]), e.variants)
+
+
+def test_srm_warn_comes_from_the_e_value_not_the_one_look_chi_square():
+    """20,000 units on a 50/50 design. 10,240 vs 9,760: chi-square p = 7e-4 < alpha = 0.001,
+    but the always-valid e-value (19) is below the warn level 1/sqrt(alpha) = 32, so the
+    status is ok and the p-value is reported as information. 10,300 vs 9,700: e-value 352,
+    warn. 10,350 vs 9,650: e-value past 1/alpha = 1,000, alert."""
+    e = Experiment("x", "control", ("control", "treatment"), (Phase(1, T0, None, {"control": 0.5, "treatment": 0.5}),))
+    cfg = CheckConfig()
+    status = {}
+    for d in (240, 300, 350):
+        srm = _find(allocation_findings([e], {"assigned": _one_hour(e, 10_000 + d, 10_000 - d)}, "assigned", T0 + H, cfg),
+                    "x", "srm")
+        status[d] = srm
+        # reference: scipy's Pearson chi-square on the same counts
+        assert srm.statistics["p_value"] == pytest.approx(sps.chisquare([10_000 + d, 10_000 - d]).pvalue, rel=1e-9)
+        assert srm.statistics["warn_e_value"] == pytest.approx(1 / math.sqrt(cfg.alpha))
+    ok, warn, alert = status[240], status[300], status[350]
+    assert ok.statistics["p_value"] < cfg.alpha and ok.status == "ok"
+    assert "below alpha" in ok.summary and "chi-square p=0.00069" in ok.summary
+    assert math.exp(ok.statistics["log_e_value"]) < 1 / math.sqrt(cfg.alpha)
+    assert warn.status == "warn" and 1 / math.sqrt(cfg.alpha) <= math.exp(warn.statistics["log_e_value"]) < 1 / cfg.alpha
+    assert "chi-square p=2.2e-05" in warn.summary
+    assert alert.status == "alert"
+
+
+def test_srm_warn_rate_on_correct_splits_is_bounded_under_hourly_looks():
+    """Ville's inequality for a test martingale (Ramdas, Grünwald, Vovk & Shafer, "Game-theoretic
+    statistics and safe anytime-valid inference", Statistical Science, 2023): a correct split
+    ever reaches e-value c with probability at most 1/c, so the srm warn level 1/sqrt(alpha)
+    is reached at some hourly look by at most sqrt(alpha) of healthy experiments. Checked by
+    simulation: 300 experiments x 720 hourly looks (30 days) at alpha = 0.01 (warn level 10,
+    bound 10%), 2,000-5,000 units a day on 30/70; the fixed-horizon chi-square p re-applied
+    at every look (the old warn rule) is shown to exceed the bound. Measured with this seed:
+    3.3% warned, 0.3% alerted, 15.3% had a one-look chi-square p below alpha."""
+    rng = np.random.default_rng(23)
+    n_exp, looks, alpha = 300, 720, 0.01
+    weights = np.tile(np.array([0.3, 0.7]), (n_exp, looks, 1))
+    per_look = rng.poisson(rng.uniform(2000, 5000, size=n_exp)[:, None] / 24, size=(n_exp, looks))
+    inc = rng.multinomial(per_look, weights)
+    res = srm_sequential(inc, weights, np.zeros((n_exp, looks), dtype=int), alpha=alpha)
+    warn_level = 0.5 * math.log(1 / alpha)
+    warn_ever = float((res.log_e >= warn_level).any(axis=1).mean())
+    bound = math.sqrt(alpha) + 3 * math.sqrt(math.sqrt(alpha) * (1 - math.sqrt(alpha)) / n_exp)
+    assert warn_ever <= bound
+    cum = np.cumsum(inc, axis=1)
+    chi = chisquare_gof(cum.reshape(-1, 2), weights.reshape(-1, 2))
+    chi_ever = float((chi.pvalue.reshape(n_exp, looks) < alpha).any(axis=1).mean())
+    assert chi_ever > bound
+    # the check applies exactly this level: one simulated experiment's last look, as a finding
+    e = Experiment("x", "control", ("control", "treatment"), (Phase(1, T0, None, {"control": 0.3, "treatment": 0.7}),))
+    i = int(np.argmax(res.log_e_final))
+    srm = _find(allocation_findings([e], {"assigned": _frame("x", inc[i], e.variants)}, "assigned", T0 + looks * H,
+                                    CheckConfig(alpha=alpha)), "x", "srm")
+    assert srm.statistics["log_e_value"] == pytest.approx(res.log_e_final[i], abs=1e-9)
+    expected = ("alert" if res.crossed[i] else "warn" if res.log_e_max[i] >= warn_level else "ok")
+    assert srm.status == expected
+
+
+def test_srm_warn_stays_once_the_level_is_reached_and_the_level_is_configurable():
+    """Ville's inequality bounds the chance that the e-value *ever* reaches the level, so the
+    warn stands once it has (like the alert once 1/alpha is passed) even when a later,
+    balanced hour lowers the current e-value: hour 0 is 10,300 vs 9,700 (e-value 352), hour 1
+    adds 20,000 vs 20,000."""
+    e = Experiment("x", "control", ("control", "treatment"), (Phase(1, T0, None, {"control": 0.5, "treatment": 0.5}),))
+    rows = np.array([[10_300, 9_700], [20_000, 20_000]])
+    srm = _find(allocation_findings([e], {"assigned": _frame("x", rows, e.variants)}, "assigned", T0 + 2 * H,
+                                    CheckConfig()), "x", "srm")
+    assert math.exp(srm.statistics["log_e_value"]) < 32 <= math.exp(srm.statistics["log_e_value_max"])
+    assert srm.status == "warn" and srm.statistics["warn_reached_at"] == T0 + H
+    assert "reached the warn level 32 at 2026-10-01 01:00 UTC" in srm.summary
+    # a lower configured level: 10,240 vs 9,760 (e-value 19) warns at 10, not at 32
+    one = _one_hour(e, 10_240, 9_760)
+    assert _find(allocation_findings([e], {"assigned": one}, "assigned", T0 + H, CheckConfig()), "x", "srm").status == "ok"
+    low = _find(allocation_findings([e], {"assigned": one}, "assigned", T0 + H, CheckConfig(srm_warn_e_value=10)), "x", "srm")
+    assert low.status == "warn" and low.statistics["warn_e_value"] == 10

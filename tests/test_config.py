@@ -26,6 +26,7 @@ def test_good_config_resolves_relative_paths(tmp_path):
     assert cfg.state.url == f"sqlite:///{tmp_path.resolve() / 'expwatch-state.sqlite'}"
     assert [s.name for s in cfg.sources] == ["assigned"]
     assert cfg.checks.alpha == 0.001
+    assert cfg.checks.episode_clear_hours == 24.0
 
 
 @pytest.mark.parametrize("text, message", [
@@ -37,6 +38,8 @@ def test_good_config_resolves_relative_paths(tmp_path):
     (GOOD + "timezone: Mars/Olympus\n", r"timezone: unknown time zone 'Mars/Olympus'"),
     ("warehouse: [1, 2\n", r"not valid YAML at line"),
     ("- just a list\n", r"must hold a mapping"),
+    (GOOD + "checks: {srm_warn_e_value: 1}\n", r"checks.srm_warn_e_value: Input should be greater than 1"),
+    (GOOD + "checks: {episode_clear_hours: -1}\n", r"checks.episode_clear_hours: Input should be greater than or equal to 0"),
 ])
 def test_bad_config_messages(tmp_path, text, message):
     with pytest.raises(ConfigError, match=message) as info:
