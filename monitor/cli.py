@@ -129,6 +129,8 @@ def _build_parser() -> argparse.ArgumentParser:
     common(st)
     st.add_argument("--format", choices=["text", "json"], default="text", help="output format (default text)")
     st.add_argument("--limit", type=int, default=10, metavar="N", help="how many recent runs (default 10)")
+    st.add_argument("--max-age", metavar="AGE",
+                    help="a health check: exit 1 when no run succeeded within AGE (30m, 3h, 1d), e.g. for a container HEALTHCHECK")
     _notify_parsers(sub, common)
     return p
 
@@ -302,11 +304,23 @@ def _status(cfg: Config, args: argparse.Namespace) -> int:
 
     from monitor.observe import read_status, render_status_text, status_to_json
 
+    max_age = None
+    if args.max_age is not None:
+        from monitor.replay import parse_every
+
+        max_age = parse_every(args.max_age, "--max-age")
     report = read_status(cfg.state.url or "", limit=args.limit)
     if args.format == "json":
         sys.stdout.write(json.dumps(status_to_json(report), indent=2, ensure_ascii=False, allow_nan=False) + "\n")
     else:
         sys.stdout.write(render_status_text(report))
+    if max_age is not None:
+        last = report.last_success
+        if last is None or datetime.now(timezone.utc) - last > max_age:
+            when = "no run has succeeded yet" if last is None else f"the latest successful run finished {last:%Y-%m-%d %H:%M} UTC"
+            sys.stderr.write(f"expwatch: unhealthy: {when}, more than --max-age {args.max_age} ago\n"
+                             if last is not None else f"expwatch: unhealthy: {when}\n")
+            return 1
     return 0
 
 
