@@ -115,6 +115,7 @@ def run_cycle(
     on_step: Callable[[str], None] | None = None,
     clock: Callable[[], datetime] = _now,
     notify: bool = True,
+    run_id: str | None = None,
 ) -> CycleResult:
     """Run one cycle and (unless ``dry_run``) record it.
 
@@ -134,7 +135,7 @@ def run_cycle(
     as_of = (as_of or started).astimezone(timezone.utc)
     if as_of > started:
         raise ConfigError(f"--as-of {as_of.isoformat()} is in the future")
-    run_id = str(uuid.uuid4())
+    run_id = run_id or str(uuid.uuid4())  # a caller that logs under the id before the cycle starts passes it
     if dry_run and _absent(cfg):  # nothing to read and nothing may be written: an empty store in memory
         state = StateStore("sqlite://", engine=sa.create_engine("sqlite://", poolclass=sa.pool.StaticPool))
     else:
