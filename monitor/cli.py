@@ -17,13 +17,15 @@ import uuid
 from collections.abc import Sequence
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any
-
-from rich.console import Console
+from typing import TYPE_CHECKING, Any
 
 from monitor import __version__
-from monitor.config import Config, load_config
 from monitor.errors import ConfigError, MonitorError
+
+if TYPE_CHECKING:  # imported when a command runs, so that --version and --help stay light
+    from rich.console import Console
+
+    from monitor.config import Config
 
 __all__ = ["main"]
 
@@ -572,6 +574,8 @@ def _demo(args: argparse.Namespace, console: Console, err: Console) -> int:
     config_path = write_demo_config(target)
     err.print(f"demo warehouse built in {time.monotonic() - t0:.1f}s: {summary.path} "
               f"({sum(summary.rows.values()):,} rows); config: {config_path}", highlight=False)
+    from monitor.config import load_config
+
     cfg = load_config(config_path)
     args.format = args.format or "text"
     code = _run(cfg, args, console, err, as_of=DEMO_AS_OF)
@@ -597,6 +601,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     if args.command is None:
         parser.print_help()
         return 2
+    from rich.console import Console
+
     # without a terminal nothing is hard-wrapped: lines are as long as their text (tables at their natural width)
     tty = sys.stdout.isatty()
     console = Console(width=None if tty else _UNWRAPPED, highlight=False, soft_wrap=not tty)
@@ -632,6 +638,8 @@ def _fail(exc: BaseException | None, message: str, event: str, code: int, verbos
 
 
 def _dispatch(args: argparse.Namespace, console: Console, err: Console) -> int:
+    from monitor.config import load_config
+
     try:
         if args.command == "demo":
             return _demo(args, console, err)

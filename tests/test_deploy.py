@@ -318,7 +318,7 @@ def test_constraints_pin_every_runtime_dependency():
             assert sep and version, ln
             pins[re.sub(r"[-_.]+", "-", name).lower()] = version
     project = tomllib.loads((DEPLOY.parent / "pyproject.toml").read_text())["project"]
-    wanted = project["dependencies"] + project["optional-dependencies"]["postgres"]
+    wanted = project["dependencies"] + project["optional-dependencies"]["postgres"] + project["optional-dependencies"]["charts"]
     for req in wanted:
         name = re.sub(r"[-_.]+", "-", re.match(r"[A-Za-z0-9_.-]+", req).group(0)).lower()
         assert name in pins, name

@@ -5,6 +5,8 @@ from __future__ import annotations
 
 import io
 import json
+import subprocess
+import sys
 from datetime import datetime, timedelta, timezone
 
 import pytest
@@ -169,3 +171,29 @@ def test_run_table_colours_alerts_unlike_clear_rows(result):
     alert = next(ln for ln in out.splitlines() if "tilted" in ln)
     clear = next(ln for ln in out.splitlines() if "steady" in ln)
     assert "\x1b[1;7;31mCRITICAL" in alert and "\x1b[32mall clear" in clear
+
+
+def test_version_loads_none_of_the_heavy_libraries():
+    """``expwatch --version`` imports lazily (the time and memory it saves are measured by
+    hand, see the README; here only which modules load)."""
+    code = ("import sys\nfrom monitor.cli import main\ntry:\n    main(['--version'])\nexcept SystemExit:\n    pass\n"
+            "heavy = ('pandas', 'scipy', 'sqlalchemy', 'pydantic', 'rich', 'matplotlib', 'numpy', 'duckdb', 'yaml')\n"
+            "print(sorted(m for m in sys.modules if m.split('.')[0] in heavy))")
+    res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60, check=False)
+    assert res.returncode == 0, res.stderr
+    assert res.stdout.splitlines() == ["expwatch 0.1.0", "[]"]
+
+
+def test_digest_without_matplotlib_asks_for_the_charts_extra(cfg, capsys, tmp_path, monkeypatch):
+    assert main(["run", "--config", str(cfg.path), "--as-of", (START + timedelta(hours=120)).isoformat(),
+                 "--format", "json"]) == 0
+    capsys.readouterr()
+    for name in [m for m in sys.modules if m == "matplotlib" or m.startswith("matplotlib.")] or ["matplotlib"]:
+        monkeypatch.setitem(sys.modules, name, None)  # as if the extra were not installed
+    assert main(["digest", "--config", str(cfg.path), "--out", str(tmp_path / "d.html")]) == 2
+    err = capsys.readouterr().err
+    assert err == "expwatch: charts need matplotlib, which is not installed: pip install 'expwatch[charts]'\n"
+    assert not (tmp_path / "d.html").exists()
+    # the plain-text digest needs no charts
+    assert main(["digest", "--config", str(cfg.path)]) == 0
+    assert "tilted" in capsys.readouterr().out
