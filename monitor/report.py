@@ -15,7 +15,7 @@ from rich.table import Table
 from rich.text import Text
 
 from monitor.cycle import CycleResult
-from monitor.findings import SEVERITY_NAMES, clean_json
+from monitor.findings import clean_json
 
 __all__ = ["to_json", "to_json_text", "print_text"]
 

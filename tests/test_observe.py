@@ -16,9 +16,11 @@ from monitor.cli import main
 from monitor.state import runs
 
 # the small synthetic warehouse of the serve tests, and its fixtures (one SRM experiment, one healthy)
-from test_serve import START, _reset_logging, cfg, wdir  # noqa: F401
+import test_serve
+from test_serve import START
 
 UTC = timezone.utc
+wdir, cfg, _reset_logging = test_serve.wdir, test_serve.cfg, test_serve._reset_logging
 
 
 def test_status_max_age_is_a_health_check(cfg, capsys):
