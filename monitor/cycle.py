@@ -31,6 +31,7 @@ from monitor.findings import Finding
 from monitor.guardrails import MetricSnapshot, guardrail_findings, pull_metrics
 from monitor.ledger import AlertEvent
 from monitor.novelty import novelty_findings, pull_novelty
+from monitor.observe import RUN_ID
 from monitor.pull import PulledSource, pull_sources
 from monitor.registry import Experiment, RegistryProblem, experiments_from_frame, experiments_from_inline
 from monitor.spillover import pull_spillover, spillover_findings
@@ -142,6 +143,7 @@ def run_cycle(
         state = StateStore(cfg.state.url or "", migrate=not dry_run)
     wh = open_warehouse(cfg.warehouse, tracer=tracer)
     notifying = notify and not dry_run and _wants_notifications(cfg)
+    run_token = RUN_ID.set(run_id)  # every record logged during the cycle carries its run id (RunContextFilter)
     try:
         wh.pin()  # one session for the run's queries (DuckDB): one snapshot, one shared first-assignment relation
         lock_cm = state.lock(wait_seconds=wait_seconds) if not dry_run else nullcontext()
@@ -201,6 +203,7 @@ def run_cycle(
     finally:
         wh.dispose()
         state.dispose()
+        RUN_ID.reset(run_token)
 
 
 def _wants_notifications(cfg: Config) -> bool:

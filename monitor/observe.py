@@ -28,6 +28,7 @@ from monitor.findings import SEVERITY_NAMES
 __all__ = [
     "JsonFormatter",
     "QueryRecord",
+    "RUN_ID",
     "RunContextFilter",
     "RunSummary",
     "StatusReport",
@@ -89,18 +90,18 @@ def _jsonable(v: Any) -> Any:
 
 
 #: the run id of the cycle this thread or task is working for (see :func:`run_context`)
-_RUN_ID: ContextVar[str | None] = ContextVar("expwatch_run_id", default=None)
+RUN_ID: ContextVar[str | None] = ContextVar("expwatch_run_id", default=None)
 
 
 @contextmanager
 def run_context(run_id: str) -> Iterator[str]:
     """Every record logged inside the ``with`` block (in this thread or task) carries
     ``run_id`` when a :class:`RunContextFilter` is attached to the handler."""
-    token = _RUN_ID.set(run_id)
+    token = RUN_ID.set(run_id)
     try:
         yield run_id
     finally:
-        _RUN_ID.reset(token)
+        RUN_ID.reset(token)
 
 
 class RunContextFilter(logging.Filter):
@@ -115,7 +116,7 @@ class RunContextFilter(logging.Filter):
         for k, v in self.context.items():
             if not hasattr(record, k):
                 setattr(record, k, v)
-        run_id = _RUN_ID.get()
+        run_id = RUN_ID.get()
         if run_id is not None and not hasattr(record, "run_id"):
             record.run_id = run_id
         return True

@@ -199,3 +199,30 @@ def test_digest_without_matplotlib_asks_for_the_charts_extra(cfg, capsys, tmp_pa
     # the plain-text digest needs no charts
     assert main(["digest", "--config", str(cfg.path)]) == 0
     assert "tilted" in capsys.readouterr().out
+
+
+def test_records_inside_a_cycle_carry_its_run_id_without_the_cli(cfg):
+    """The scheduler and notebooks call run_cycle directly: the records of its queries
+    still carry the cycle's run id, and records after the cycle do not."""
+    import logging
+
+    from monitor.cycle import run_cycle
+    from monitor.observe import JsonFormatter, RunContextFilter
+
+    stream = io.StringIO()
+    handler = logging.StreamHandler(stream)
+    handler.setFormatter(JsonFormatter())
+    handler.addFilter(RunContextFilter())
+    lg = logging.getLogger("monitor")
+    level = lg.level
+    lg.addHandler(handler)
+    lg.setLevel(logging.INFO)
+    try:
+        result = run_cycle(cfg, as_of=START + timedelta(hours=120), dry_run=True)
+        lg.info("after the cycle")
+    finally:
+        lg.setLevel(level)
+    logs = [json.loads(x) for x in stream.getvalue().splitlines()]
+    queries = [x for x in logs if x.get("event") == "query"]
+    assert queries and all(q["run_id"] == result.run_id for q in queries)
+    assert "run_id" not in logs[-1]
