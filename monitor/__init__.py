@@ -11,12 +11,30 @@ plus the command line's JSON documents::
 
 from __future__ import annotations
 
-from monitor.config import Config, load_config
-from monitor.cycle import CycleResult, run_cycle
+import importlib
+from typing import TYPE_CHECKING, Any
+
 from monitor.errors import ConfigError, MonitorError, NotifyError, StateError, WarehouseError
-from monitor.findings import Finding
+
+if TYPE_CHECKING:
+    from monitor.config import Config, load_config
+    from monitor.cycle import CycleResult, run_cycle
+    from monitor.findings import Finding
 
 __version__ = "0.1.0"
+
+#: names imported on first use (PEP 562), so that ``expwatch --version`` does not load
+#: pandas, SciPy and SQLAlchemy
+_LAZY = {"Config": "monitor.config", "load_config": "monitor.config", "CycleResult": "monitor.cycle",
+         "run_cycle": "monitor.cycle", "Finding": "monitor.findings"}
+
+
+def __getattr__(name: str) -> Any:
+    if name in _LAZY:
+        value = getattr(importlib.import_module(_LAZY[name]), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module 'monitor' has no attribute {name!r}")
 
 __all__ = [
     "Config",

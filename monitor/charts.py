@@ -23,13 +23,27 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["allocation_chart", "cumulative_shares", "guardrail_chart"]
+from monitor.errors import ConfigError
+
+__all__ = ["allocation_chart", "cumulative_shares", "guardrail_chart", "require_matplotlib"]
 
 _FIGSIZE = (5.2, 2.3)
 _DPI = 90
 
 
+def require_matplotlib() -> None:
+    """Raise a one-line :class:`ConfigError` naming the extra to install when
+    matplotlib, which draws the charts, is not installed."""
+    try:
+        import matplotlib  # noqa: F401
+    except ModuleNotFoundError as exc:
+        if exc.name != "matplotlib":
+            raise
+        raise ConfigError("charts need matplotlib, which is not installed: pip install 'expwatch[charts]'") from None
+
+
 def _figure() -> Any:
+    require_matplotlib()
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 

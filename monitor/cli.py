@@ -11,19 +11,21 @@ from __future__ import annotations
 
 import argparse
 import logging
-import shutil
 import sys
 import time
+import uuid
 from collections.abc import Sequence
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any
-
-from rich.console import Console
+from typing import TYPE_CHECKING, Any
 
 from monitor import __version__
-from monitor.config import Config, load_config
 from monitor.errors import ConfigError, MonitorError
+
+if TYPE_CHECKING:  # imported when a command runs, so that --version and --help stay light
+    from rich.console import Console
+
+    from monitor.config import Config
 
 __all__ = ["main"]
 
@@ -139,6 +141,8 @@ def _build_parser() -> argparse.ArgumentParser:
     common(st)
     st.add_argument("--format", choices=["text", "json"], default="text", help="output format (default text)")
     st.add_argument("--limit", type=int, default=10, metavar="N", help="how many recent runs (default 10)")
+    st.add_argument("--max-age", metavar="AGE",
+                    help="a health check: exit 1 when no run succeeded within AGE (30m, 3h, 1d), e.g. for a container HEALTHCHECK")
     _notify_parsers(sub, common)
     return p
 
@@ -185,27 +189,43 @@ def _observability_options(sp: argparse.ArgumentParser) -> None:
                     help="after each cycle, write Prometheus text-format metrics to PATH (atomically)")
 
 
+def _not_an_alert_event(record: logging.LogRecord) -> bool:
+    """Text logs leave out the alert events: the run table, or --quiet's lines, show them."""
+    return not str(getattr(record, "event", "")).startswith("alert_")
+
+
 def _setup_logging(verbose: bool, console: Console) -> None:
     root = logging.getLogger("monitor")
     root.handlers.clear()
     handler = logging.StreamHandler(sys.stderr)
     handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s", "%Y-%m-%dT%H:%M:%S%z"))
+    handler.addFilter(_not_an_alert_event)
     root.addHandler(handler)
     root.setLevel(logging.INFO if verbose else logging.WARNING)
     root.propagate = False
 
 
+def _json_logs() -> bool:
+    """Whether the log goes out as JSON lines (``--log-format json``): then stderr carries
+    nothing else, and stdout no table."""
+    from monitor.observe import JsonFormatter
+
+    return any(isinstance(h.formatter, JsonFormatter) for h in logging.getLogger("monitor").handlers)
+
+
 def _run(cfg: Config, args: argparse.Namespace, console: Console, err: Console, *, as_of: datetime | None) -> int:
     from monitor.cycle import run_cycle
     from monitor.findings import SEVERITY_NAMES
+    from monitor.observe import log_cycle, run_context
     from monitor.report import print_text, to_json_text
     from monitor.state import LockHeld
 
     fmt = args.format or cfg.output
     quiet = bool(getattr(args, "quiet", False))
+    json_logs = _json_logs()
     t0 = time.monotonic()
     status = None
-    if err.is_terminal and fmt == "text" and not quiet:
+    if err.is_terminal and fmt == "text" and not quiet and not json_logs:
         status = err.status("starting", spinner="dots")
         status.start()
 
@@ -213,19 +233,23 @@ def _run(cfg: Config, args: argparse.Namespace, console: Console, err: Console, 
         if status is not None:
             status.update(f"querying {name} ({time.monotonic() - t0:.1f}s)")
         else:
-            log.info("step: %s", name)
+            log.info("step: %s", name, extra={"event": "step", "step": name})
 
+    run_id = getattr(args, "run_id", None) or str(uuid.uuid4())
     try:
-        result = run_cycle(cfg, as_of=as_of, dry_run=getattr(args, "dry_run", False),
-                           full_refresh=getattr(args, "full_refresh", False), wait_seconds=getattr(args, "wait", 0.0),
-                           on_step=on_step)
+        with run_context(run_id):
+            result = run_cycle(cfg, as_of=as_of, dry_run=getattr(args, "dry_run", False),
+                               full_refresh=getattr(args, "full_refresh", False), wait_seconds=getattr(args, "wait", 0.0),
+                               on_step=on_step, run_id=run_id)
     except LockHeld as exc:
         if status is not None:
             status.stop()
-        if quiet:
-            log.info("%s; this run stepped aside", exc)
+        if json_logs:
+            log.warning("%s; this run stepped aside", exc, extra={"event": "stepped_aside"})
+        elif quiet:  # for cron: a stepped-aside run is no news
+            log.info("%s; this run stepped aside", exc, extra={"event": "stepped_aside"})
         else:
-            err.print(f"expwatch: {exc}; this run stepped aside", highlight=False)
+            sys.stderr.write(f"expwatch: {exc}; this run stepped aside\n")
         return 0
     except MonitorError:
         _write_metrics(cfg, args, ok=False)
@@ -233,18 +257,17 @@ def _run(cfg: Config, args: argparse.Namespace, console: Console, err: Console, 
     finally:
         if status is not None:
             status.stop()
-    if quiet:
+    if fmt == "json":
+        sys.stdout.write(to_json_text(result) + "\n")
+    elif json_logs:
+        pass  # the alert events and the summary are log records; no table between the JSON lines
+    elif quiet:
         for ev in result.events:
             if ev.notifiable:
                 sys.stdout.write(f"{ev.kind} {SEVERITY_NAMES.get(ev.severity, ev.severity)}: "
                                  f"{ev.experiment} · {ev.check} · {ev.scope}: {ev.summary}\n")
-    elif fmt == "json":
-        sys.stdout.write(to_json_text(result) + "\n")
     else:
         print_text(result, console)
-    log.info("cycle done in %.2fs", time.monotonic() - t0)
-    from monitor.observe import log_cycle
-
     log_cycle(result, time.monotonic() - t0, cfg.state.url)
     _write_metrics(cfg, args, ok=True)
     return 0
@@ -259,12 +282,13 @@ def _write_metrics(cfg: Config, args: argparse.Namespace, *, ok: bool) -> None:
 
 
 def _setup_json_logging(level: int) -> None:
-    from monitor.observe import JsonFormatter
+    from monitor.observe import JsonFormatter, RunContextFilter
 
     root = logging.getLogger("monitor")
     root.handlers.clear()
     handler = logging.StreamHandler(sys.stderr)
     handler.setFormatter(JsonFormatter())
+    handler.addFilter(RunContextFilter())
     root.addHandler(handler)
     root.setLevel(level)
     root.propagate = False
@@ -315,11 +339,23 @@ def _status(cfg: Config, args: argparse.Namespace) -> int:
 
     from monitor.observe import read_status, render_status_text, status_to_json
 
+    max_age = None
+    if args.max_age is not None:
+        from monitor.replay import parse_every
+
+        max_age = parse_every(args.max_age, "--max-age")
     report = read_status(cfg.state.url or "", limit=args.limit)
     if args.format == "json":
         sys.stdout.write(json.dumps(status_to_json(report), indent=2, ensure_ascii=False, allow_nan=False) + "\n")
     else:
         sys.stdout.write(render_status_text(report))
+    if max_age is not None:
+        last = report.last_success
+        if last is None or datetime.now(timezone.utc) - last > max_age:
+            when = "no run has succeeded yet" if last is None else f"the latest successful run finished {last:%Y-%m-%d %H:%M} UTC"
+            sys.stderr.write(f"expwatch: unhealthy: {when}, more than --max-age {args.max_age} ago\n"
+                             if last is not None else f"expwatch: unhealthy: {when}\n")
+            return 1
     return 0
 
 
@@ -575,6 +611,8 @@ def _demo(args: argparse.Namespace, console: Console, err: Console) -> int:
     config_path = write_demo_config(target)
     err.print(f"demo warehouse built in {time.monotonic() - t0:.1f}s: {summary.path} "
               f"({sum(summary.rows.values()):,} rows); config: {config_path}", highlight=False)
+    from monitor.config import load_config
+
     cfg = load_config(config_path)
     args.format = args.format or "text"
     code = _run(cfg, args, console, err, as_of=DEMO_AS_OF)
@@ -600,14 +638,45 @@ def main(argv: Sequence[str] | None = None) -> int:
     if args.command is None:
         parser.print_help()
         return 2
-    width = None if sys.stdout.isatty() else max(132, shutil.get_terminal_size((132, 24)).columns)
-    console = Console(width=width, highlight=False)
-    err = Console(stderr=True, highlight=False)
+    from rich.console import Console
+
+    # without a terminal nothing is hard-wrapped: lines are as long as their text (tables at their natural width)
+    tty = sys.stdout.isatty()
+    console = Console(width=None if tty else _UNWRAPPED, highlight=False, soft_wrap=not tty)
+    err = Console(stderr=True, highlight=False, soft_wrap=not sys.stderr.isatty())
     _setup_logging(args.verbose, err)
     if getattr(args, "log_format", "text") == "json":
         _setup_json_logging(logging.DEBUG if args.verbose else logging.INFO)
     elif args.command in ("serve", "replay"):
         logging.getLogger("monitor").setLevel(logging.INFO)  # a long-running command says what it does
+    if args.command != "run":
+        return _dispatch(args, console, err)
+    from monitor.observe import run_context
+
+    args.run_id = str(uuid.uuid4())
+    with run_context(args.run_id):  # the run's id on every log line from here on, errors included
+        return _dispatch(args, console, err)
+
+
+#: the width rich lays out in when the output is not a terminal: wide enough that nothing wraps
+_UNWRAPPED = 100_000
+
+
+def _fail(exc: BaseException | None, message: str, event: str, code: int, verbose: bool) -> int:
+    """Report a failure in one line: a plain ``expwatch: ...`` line, or one ``error``
+    record with ``--log-format json``; the traceback only with ``--verbose``."""
+    if _json_logs():
+        log.error(message, exc_info=exc if verbose else None, extra={"event": event, "exit_code": code})
+    else:
+        if verbose and exc is not None:
+            log.error("expwatch failed", exc_info=exc)
+        sys.stderr.write(f"expwatch: {message}\n")
+    return code
+
+
+def _dispatch(args: argparse.Namespace, console: Console, err: Console) -> int:
+    from monitor.config import load_config
+
     try:
         if args.command == "demo":
             return _demo(args, console, err)
@@ -630,16 +699,10 @@ def main(argv: Sequence[str] | None = None) -> int:
         if args.command in ("digest", "alerts", "mute", "unmute"):
             return _notify_command(cfg, args, err)
     except MonitorError as exc:
-        if args.verbose:
-            log.exception("expwatch failed")
-        sys.stderr.write(f"expwatch: {exc}\n")
-        return exc.exit_code
+        return _fail(exc, str(exc), "error", exc.exit_code, args.verbose)
     except KeyboardInterrupt:
-        sys.stderr.write("expwatch: interrupted; nothing was recorded for this cycle\n")
-        return 1
+        return _fail(None, "interrupted; nothing was recorded for this cycle", "interrupted", 1, False)
     except Exception as exc:  # a bug, not an expected error: say so in one line
-        if args.verbose:
-            log.exception("expwatch failed")
-        sys.stderr.write(f"expwatch: internal error: {type(exc).__name__}: {exc} (run with --verbose for details)\n")
-        return 1
+        return _fail(exc, f"internal error: {type(exc).__name__}: {exc} (run with --verbose for details)",
+                     "internal_error", 1, args.verbose)
     return 2

@@ -31,6 +31,7 @@ from monitor.findings import Finding
 from monitor.guardrails import MetricSnapshot, guardrail_findings, pull_metrics
 from monitor.ledger import AlertEvent
 from monitor.novelty import novelty_findings, pull_novelty
+from monitor.observe import RUN_ID
 from monitor.pull import PulledSource, pull_sources
 from monitor.registry import Experiment, RegistryProblem, experiments_from_frame, experiments_from_inline
 from monitor.spillover import pull_spillover, spillover_findings
@@ -115,6 +116,7 @@ def run_cycle(
     on_step: Callable[[str], None] | None = None,
     clock: Callable[[], datetime] = _now,
     notify: bool = True,
+    run_id: str | None = None,
 ) -> CycleResult:
     """Run one cycle and (unless ``dry_run``) record it.
 
@@ -136,13 +138,14 @@ def run_cycle(
     as_of = (as_of or started).astimezone(timezone.utc)
     if as_of > started:
         raise ConfigError(f"--as-of {as_of.isoformat()} is in the future")
-    run_id = str(uuid.uuid4())
+    run_id = run_id or str(uuid.uuid4())  # a caller that logs under the id before the cycle starts passes it
     if dry_run and _absent(cfg):  # nothing to read and nothing may be written: an empty store in memory
         state = StateStore("sqlite://", engine=sa.create_engine("sqlite://", poolclass=sa.pool.StaticPool))
     else:
         state = StateStore(cfg.state.url or "", migrate=not dry_run)
     notifying = notify and not dry_run and _wants_notifications(cfg)
     wh = open_warehouse(cfg.warehouse, tracer=tracer)
+    run_token = RUN_ID.set(run_id)  # every record logged during the cycle carries its run id (RunContextFilter)
     try:
         # the cycle's place in the order of cycles, taken before it reads anything (monitor health)
         number = outbox.begin_cycle(state.engine) if notifying else None
@@ -208,6 +211,7 @@ def run_cycle(
     finally:
         wh.dispose()
         state.dispose()
+        RUN_ID.reset(run_token)
 
 
 def _wants_notifications(cfg: Config) -> bool:

@@ -1268,6 +1268,9 @@ def _png(fig: Any) -> str:
 
 
 def _charts(d: Diagnosis, p: PhaseDiagnosis) -> dict[str, str]:
+    from monitor.charts import require_matplotlib
+
+    require_matplotlib()
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 

@@ -10,8 +10,11 @@ from __future__ import annotations
 import json
 import logging
 import os
+import sys
 import tempfile
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
+from contextlib import contextmanager
+from contextvars import ContextVar
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
@@ -25,6 +28,7 @@ from monitor.findings import SEVERITY_NAMES
 __all__ = [
     "JsonFormatter",
     "QueryRecord",
+    "RUN_ID",
     "RunContextFilter",
     "RunSummary",
     "StatusReport",
@@ -33,6 +37,7 @@ __all__ = [
     "metrics_text",
     "query_records",
     "read_status",
+    "run_context",
     "render_status_text",
     "status_to_json",
     "write_metrics_file",
@@ -84,9 +89,24 @@ def _jsonable(v: Any) -> Any:
     return str(v)
 
 
+#: the run id of the cycle this thread or task is working for (see :func:`run_context`)
+RUN_ID: ContextVar[str | None] = ContextVar("expwatch_run_id", default=None)
+
+
+@contextmanager
+def run_context(run_id: str) -> Iterator[str]:
+    """Every record logged inside the ``with`` block (in this thread or task) carries
+    ``run_id`` when a :class:`RunContextFilter` is attached to the handler."""
+    token = RUN_ID.set(run_id)
+    try:
+        yield run_id
+    finally:
+        RUN_ID.reset(token)
+
+
 class RunContextFilter(logging.Filter):
-    """Adds the fields in :attr:`context` (e.g. ``run_id``) to every record that
-    lacks them; the caller sets and clears the context around a cycle."""
+    """Adds the fields in :attr:`context`, and the ``run_id`` of the current
+    :func:`run_context`, to every record that lacks them."""
 
     def __init__(self) -> None:
         super().__init__()
@@ -96,6 +116,9 @@ class RunContextFilter(logging.Filter):
         for k, v in self.context.items():
             if not hasattr(record, k):
                 setattr(record, k, v)
+        run_id = RUN_ID.get()
+        if run_id is not None and not hasattr(record, "run_id"):
+            record.run_id = run_id
         return True
 
 
@@ -152,18 +175,24 @@ def _run_detail(state_url: str, run_id: str) -> dict[str, Any] | None:
         return None
 
 
+#: the alert ledger events that get a log record of their own
+ALERT_EVENTS = ("opened", "escalated", "resolved")
+
 #: check-timing groups of :func:`monitor.cycle.run_cycle` and the finding check names they produce
 _CHECK_GROUPS = {"allocation": ("srm", "leakage", "unknown_variant", "freshness", "design")}
 
 
 def log_cycle(result: Any, seconds: float, state_url: str | None = None, logger: logging.Logger = log) -> None:
-    """Log one line per warehouse query, one per check (computation time, including its own
-    queries for the metric checks, and findings) and one summary line for a finished cycle,
-    each carrying ``run_id`` (structured fields for :class:`JsonFormatter`)."""
-    for q in query_records(result, state_url):
-        logger.info("query %s: %.3fs, %s rows", q.name, q.seconds, "?" if q.rows is None else q.rows,
-                    extra={"event": "query", "run_id": result.run_id, "query": q.name,
-                           "seconds": round(q.seconds, 4), "rows": q.rows})
+    """Log one line per check (computation time, including its own queries for the metric
+    checks, and findings), one per alert that opened, escalated or resolved, and one
+    summary line for a finished cycle, each carrying ``run_id`` (structured fields for
+    :class:`JsonFormatter`).
+
+    Each warehouse query is logged once, by the warehouse when it finishes (``event``
+    ``query``, with its own time), not again here. Alert events are ``warning`` records
+    when an alert opened or escalated and ``info`` when it resolved; their ``event`` is
+    ``alert_opened``, ``alert_escalated`` or ``alert_resolved``.
+    """
     by_check: dict[str, int] = {}
     for f in result.findings:
         by_check[f.check] = by_check.get(f.check, 0) + 1
@@ -175,6 +204,12 @@ def log_cycle(result: Any, seconds: float, state_url: str | None = None, logger:
     kinds: dict[str, int] = {}
     for e in result.events:
         kinds[e.kind] = kinds.get(e.kind, 0) + 1
+        if e.kind in ALERT_EVENTS:
+            sev = SEVERITY_NAMES.get(e.severity, str(e.severity))
+            logger.log(logging.INFO if e.kind == "resolved" else logging.WARNING,
+                       "alert %s: %s · %s · %s (%s): %s", e.kind, e.experiment, e.check, e.scope, sev, e.summary,
+                       extra={"event": f"alert_{e.kind}", "run_id": result.run_id, "experiment": e.experiment,
+                              "check": e.check, "scope": e.scope, "severity": sev, "summary": e.summary})
     logger.info("cycle %s as of %s: %d experiments, %d findings, events %s, %.2fs%s",
                 result.run_id, result.as_of.isoformat(), len(result.experiments), len(result.findings),
                 kinds or "none", seconds, "" if result.recorded else " (not recorded)",
@@ -380,7 +415,8 @@ def _label(v: str) -> str:
     return v.replace("\\", "\\\\").replace("\n", "\\n").replace('"', '\\"')
 
 
-def metrics_text(report: StatusReport, *, last_attempt_ok: bool | None = None, checks: Sequence[str] = ()) -> str:
+def metrics_text(report: StatusReport, *, last_attempt_ok: bool | None = None, checks: Sequence[str] = (),
+                 counters: dict[str, int] | None = None) -> str:
     """Prometheus text exposition format (version 0.0.4) of a status report.
 
     Parameters
@@ -431,7 +467,45 @@ def metrics_text(report: StatusReport, *, last_attempt_ok: bool | None = None, c
     if last_attempt_ok is not None:
         gauge("expwatch_last_attempt_success", "1 if the latest cycle attempt succeeded, else 0.",
               [({}, 1.0 if last_attempt_ok else 0.0)])
+    gauge("expwatch_build_info", "Always 1; the labels say which expwatch and Python wrote the file.",
+          [({"version": _version(), "python": ".".join(map(str, sys.version_info[:3]))}, 1.0)])
+    for name, help_ in COUNTERS.items():
+        if counters is not None:
+            out.append(f"# HELP {name} {help_}")
+            out.append(f"# TYPE {name} counter")
+            out.append(f"{name} {counters.get(name, 0)}")
     return "\n".join(out) + "\n"
+
+
+#: the counters of the metrics file, kept by whoever rewrites it (see :func:`write_metrics_file`)
+COUNTERS = {
+    "expwatch_runs_total": "Cycles that ran to an end (succeeded or failed) and wrote this file; stepped-aside runs are not counted.",
+    "expwatch_run_failures_total": "Cycles that failed (exit code 1), of expwatch_runs_total.",
+}
+
+
+def _version() -> str:
+    from monitor import __version__
+
+    return __version__
+
+
+def _previous_counters(path: Path) -> dict[str, int]:
+    """The counters of an earlier metrics file at ``path`` (none: all 0, which Prometheus
+    reads as a counter reset)."""
+    try:
+        text = path.read_text(encoding="utf-8")
+    except OSError:
+        return {}
+    out = {}
+    for ln in text.splitlines():
+        name, _, value = ln.partition(" ")
+        if name in COUNTERS:
+            try:
+                out[name] = int(float(value))
+            except ValueError:
+                continue
+    return out
 
 
 def _num(v: float) -> str:
@@ -443,6 +517,10 @@ def write_metrics_file(path: str | os.PathLike[str], state_url: str, *, last_att
     the same directory, then ``os.replace``), as the node_exporter textfile
     collector expects.
 
+    The counters ``expwatch_runs_total`` and ``expwatch_run_failures_total`` go on
+    from the file being replaced: each call with ``last_attempt_ok`` adds one run
+    (and one failure when it is False). A new file starts them from 0.
+
     Raises
     ------
     ConfigError
@@ -451,7 +529,12 @@ def write_metrics_file(path: str | os.PathLike[str], state_url: str, *, last_att
     from monitor.findings import CHECKS
 
     target = Path(path)
-    text = metrics_text(read_status(state_url, limit=1), last_attempt_ok=last_attempt_ok, checks=sorted(CHECKS))
+    counters = _previous_counters(target)
+    if last_attempt_ok is not None:  # one more cycle came to an end
+        counters["expwatch_runs_total"] = counters.get("expwatch_runs_total", 0) + 1
+        counters["expwatch_run_failures_total"] = counters.get("expwatch_run_failures_total", 0) + (not last_attempt_ok)
+    text = metrics_text(read_status(state_url, limit=1), last_attempt_ok=last_attempt_ok, checks=sorted(CHECKS),
+                        counters=counters)
     directory = target.parent if str(target.parent) else Path(".")
     try:
         fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=directory)

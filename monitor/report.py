@@ -15,12 +15,11 @@ from rich.table import Table
 from rich.text import Text
 
 from monitor.cycle import CycleResult
-from monitor.findings import SEVERITY_NAMES, clean_json
+from monitor.findings import clean_json
 
 __all__ = ["to_json", "to_json_text", "print_text"]
 
 JSON_VERSION = 1
-_STATUS_STYLE = {"ok": "green", "warn": "yellow", "alert": "bold red"}
 _RANK = {"ok": 0, "warn": 1, "alert": 2}
 
 
@@ -71,55 +70,74 @@ def to_json_text(result: CycleResult) -> str:
     return json.dumps(to_json(result), indent=2, ensure_ascii=False, sort_keys=False)
 
 
-def _cell(status: str, text: str = "") -> Text:
-    return Text(text or status, style=_STATUS_STYLE.get(status, ""))
+#: how each severity looks in the terminal: a different word and a different style, so the
+#: levels stay apart without colour too (NO_COLOR, TERM=dumb)
+_SEVERITY_LOOK = {
+    0: ("ok", "green"),
+    1: ("warn", "yellow"),
+    2: ("ALERT", "bold red"),
+    3: ("CRITICAL", "bold reverse red"),
+}
+
+
+def _label(severity: int) -> Text:
+    word, style = _SEVERITY_LOOK[severity]
+    return Text(word, style=style)
 
 
 def print_text(result: CycleResult, console: Console) -> None:
-    """The table of live experiments with each check's status, then the problems."""
-    by_exp: dict[str, dict[str, list[Any]]] = defaultdict(lambda: defaultdict(list))
+    """One line per live experiment naming only the checks that need a look, then the
+    problems, most severe first.
+
+    The layout reads at 80 columns: the last column wraps at word boundaries in a
+    terminal. Without a terminal nothing is wrapped and no line ends in spaces.
+    """
+    if console.is_terminal:
+        _print_text(result, console)
+        return
+    with console.capture() as cap:
+        _print_text(result, console)
+    console.file.write("".join(ln.rstrip() + "\n" for ln in cap.get().splitlines()))
+
+
+def _print_text(result: CycleResult, console: Console) -> None:
+    by_exp: dict[str, list[Any]] = defaultdict(list)
     for f in result.findings:
-        by_exp[f.experiment][f.check].append(f)
-    stages = [s.name for s in result.sources]
+        if f.status != "ok":
+            by_exp[f.experiment].append(f)
     table = Table(title=f"expwatch · {len(result.experiments)} live experiments · as of {result.as_of:%Y-%m-%d %H:%M} UTC",
-                  title_justify="left", show_edge=False, pad_edge=False)
+                  title_justify="left", show_edge=False, pad_edge=False, box=None)
     table.add_column("experiment", no_wrap=True)
     table.add_column("phase", justify="right", no_wrap=True)
     table.add_column("units", justify="right", no_wrap=True)
-    for s in stages:
-        table.add_column(f"srm {s}", overflow="fold")
-    for c in ("leakage", "unknown_variant", "freshness"):
-        table.add_column(c.replace("unknown_variant", "variants"), overflow="fold")
-    table.add_column("guardrails", overflow="fold")
-    table.add_column("effects", overflow="fold")  # novelty, spillover, collision: the worst of them
+    table.add_column("checks that need a look", ratio=1)
     entries = {e["experiment"]: e for e in _experiment_entries(result)}
     for e in result.experiments:
-        checks = by_exp.get(e.id, {})
         entry = entries[e.id]
-        srm_cells = []
-        for s in stages:
-            fs = [f for f in checks.get("srm", []) if f.scope == s]
-            srm_cells.append(_cell(fs[0].status) if fs else Text("-"))
-        other = []
-        for c in ("leakage", "unknown_variant", "freshness"):
-            fs = checks.get(c, [])
-            other.append(_cell(fs[0].status) if fs else Text("-"))
-        for group in (("guardrail",), ("novelty", "spillover", "collision")):
-            fs = [f for c in group for f in checks.get(c, [])]
-            worst = max((f.status for f in fs), key=lambda st: _RANK[st], default=None)
-            other.append(_cell(worst) if worst else Text("-"))
-        table.add_row(e.id, str(entry["phase"] or "-"), f"{sum(entry['units'].values()):,}", *srm_cells, *other)
+        found = sorted(by_exp.get(e.id, []), key=lambda f: (-f.severity, f.check, f.scope))
+        if found:
+            cell = Text(", ").join(Text.assemble(_label(f.severity), " ", _where(f)) for f in found)
+        else:
+            cell = Text("all clear", style="green")
+        table.add_row(e.id, str(entry["phase"] or "-"), f"{sum(entry['units'].values()):,}", cell)
     console.print(table)
     problems = [f for f in result.findings if f.status != "ok"]
     if problems:
         console.print()
+        grid = Table.grid(padding=(0, 1))
+        grid.add_column(no_wrap=True)
+        grid.add_column(ratio=1)
         for f in sorted(problems, key=lambda f: (-f.severity, f.experiment, f.check, f.scope)):
-            label = SEVERITY_NAMES[f.severity].upper()
-            console.print(Text.assemble((f"{label:<8}", _STATUS_STYLE[f.status]), f" {f.experiment} · {f.check}"
-                                        f"{'' if f.scope in ('registry',) else ' · ' + f.scope}: ", (f.summary, "")))
+            grid.add_row(_label(f.severity), Text(f"{f.experiment} · {_where(f)}: {f.summary}"))
+        console.print(grid)
     new = [ev for ev in result.events if ev.kind in ("opened", "escalated", "resolved")]
     if new:
         console.print()
         console.print(f"alert ledger: {', '.join(f'{sum(1 for e in new if e.kind == k)} {k}' for k in ('opened', 'escalated', 'resolved') if any(e.kind == k for e in new))}")
     if result.note:
         console.print(f"note: {result.note}")
+
+
+def _where(f: Any) -> str:
+    """``check·scope`` (the stage, metric or pair), or the check alone for registry problems."""
+    return f.check if f.scope == "registry" else f"{f.check}·{f.scope}"

@@ -303,6 +303,7 @@ class StateStore:
         owner = uuid.uuid4().hex
         host = socket.gethostname()
         deadline = time.monotonic() + wait_seconds
+        waiting = False
         while True:
             holder = self._try_lock(name, owner, host, ttl)
             if holder is None:
@@ -312,6 +313,10 @@ class StateStore:
                     f"another expwatch cycle holds the state store lock (pid {holder['pid']} on {holder['host']}, "
                     f"since {holder['acquired_at']:%Y-%m-%d %H:%M:%S} UTC)"
                 )
+            if not waiting:
+                waiting = True
+                log.warning("waiting up to %gs for the state store lock held by pid %s on %s", wait_seconds,
+                            holder["pid"], holder["host"], extra={"event": "lock_wait", "wait_seconds": wait_seconds})
             time.sleep(min(1.0, max(0.05, deadline - time.monotonic())))
         try:
             yield owner

@@ -88,6 +88,15 @@ class QueryStats:
     bytes_scanned: int | None = None
 
 
+def _record(stats: list[QueryStats], q: QueryStats) -> None:
+    """Keep a finished query's statistics and log it once, when it finished (``event``
+    ``query``; the run id comes from the caller's :func:`monitor.observe.run_context`)."""
+    stats.append(q)
+    log.info("query %s: %d rows in %.2fs", q.name, q.rows, q.seconds,
+             extra={"event": "query", "query": q.name, "seconds": round(q.seconds, 4), "rows": q.rows,
+                    "rows_scanned": q.rows_scanned, "bytes_scanned": q.bytes_scanned})
+
+
 class Warehouse:
     """A read-only SQLAlchemy engine plus the query helpers the monitor needs.
 
@@ -237,8 +246,7 @@ class Warehouse:
             raise WarehouseError(f"warehouse {safe_url(self.url)}: query {name}: {_first_line(exc)}") from exc
         self._temps.append(relation)
         seconds = time.perf_counter() - t0
-        self.stats.append(QueryStats(name, seconds, rows, scanned, read_bytes))
-        log.info("query %s: %d rows in %.2fs", name, rows, seconds)
+        _record(self.stats, QueryStats(name, seconds, rows, scanned, read_bytes))
         return relation
 
     def _statement(self, name: str, sql: str, params: Mapping[str, Any], expanding: tuple[str, ...]) -> sa.TextClause:
@@ -284,8 +292,7 @@ class Warehouse:
         except Exception as exc:  # driver errors that are not DBAPI errors (e.g. duckdb.IOException)
             raise WarehouseError(f"warehouse {safe_url(self.url)}: query {name}: {_first_line(exc)}") from exc
         seconds = time.perf_counter() - t0
-        self.stats.append(QueryStats(name, seconds, len(frame), scanned, read_bytes))
-        log.info("query %s: %d rows in %.2fs", name, len(frame), seconds)
+        _record(self.stats, QueryStats(name, seconds, len(frame), scanned, read_bytes))
         return frame
 
     def _fetch_frame(self, result: sa.CursorResult[Any], cols: list[str]) -> pd.DataFrame:
@@ -561,8 +568,7 @@ class SparkWarehouse(Warehouse):
                 timer.cancel()
         seconds = time.perf_counter() - t0
         scanned, nbytes = _spark_scan_counters(out)
-        self.stats.append(QueryStats(name, seconds, len(frame), scanned, nbytes))
-        log.info("query %s: %d rows in %.2fs", name, len(frame), seconds)
+        _record(self.stats, QueryStats(name, seconds, len(frame), scanned, nbytes))
         return frame
 
     def dispose(self) -> None:
