@@ -25,7 +25,13 @@ Guardrail interaction
     two first assignments). For pairs with enough overlap the
     interaction contrasts ``m[i, j] - m[i, 0] - m[0, j] + m[0, 0]`` and their
     joint Wald test (:func:`monitor.stats.interference.interaction_wald`) are
-    computed for each pair and BH-adjusted over all pairs x guardrails.
+    computed for each pair and BH-adjusted over all pairs x guardrails. The
+    contrasts are formed within each pair of ramp phases of the two experiments
+    and pooled by inverse variance
+    (:func:`monitor.stats.interference.stratified_interaction_wald`): when the
+    two ramp at different times, the variant combinations otherwise mix calendar
+    cohorts observed for different lengths of time in different proportions,
+    which reads as an interaction that is not there.
 
 Cost: the pairs come from a self-join of the per-unit assignment rows on the
 unit id, aggregated in the warehouse, so the work grows with the number of
@@ -67,7 +73,7 @@ from monitor.findings import Finding
 from monitor.firsts import relation as first_relation
 from monitor.registry import Experiment
 from monitor.stats import effects as fx
-from monitor.stats.interference import independence_chi2, interaction_wald
+from monitor.stats.interference import independence_chi2, stratified_interaction_wald
 from monitor.templates import Quoter, render
 from monitor.templates import naive_utc as _naive
 from monitor.warehouse import Warehouse
@@ -268,6 +274,16 @@ def collision_findings(experiments: Sequence[Experiment], pull: CollisionPull, c
     return _findings(tests, checks)
 
 
+def _cell_estimates(m: MetricConfig, cell: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per cell (last axis: n, sum_y, sum_y2, sum_x, sum_x2, sum_xy): estimate, its variance, defined."""
+    n = cell[..., 0]
+    if m.kind == "ratio":
+        rm = fx.ratio_moments(n, cell[..., 1], cell[..., 2], cell[..., 3], cell[..., 4], cell[..., 5])
+        return rm.ratio, rm.var_ratio, rm.defined
+    mo = fx.moments(n, cell[..., 1], cell[..., 2])
+    return mo.mean, np.where(n > 0, mo.var / np.where(n > 0, n, 1.0), 0.0), mo.defined
+
+
 def _interaction_tests(m: MetricConfig, frame: pd.DataFrame, by_id: dict[str, Experiment],
                        checks: CheckConfig) -> list[dict[str, Any]]:
     out: list[dict[str, Any]] = []
@@ -295,15 +311,15 @@ def _interaction_tests(m: MetricConfig, frame: pd.DataFrame, by_id: dict[str, Ex
         n = cell[..., 0]
         if n.sum() < checks.collision_min_overlap:
             continue
-        if m.kind == "ratio":
-            rm = fx.ratio_moments(n, cell[..., 1], cell[..., 2], cell[..., 3], cell[..., 4], cell[..., 5])
-            mean, var, ok = rm.ratio, rm.var_ratio, rm.defined
-        else:
-            mo = fx.moments(n, cell[..., 1], cell[..., 2])
-            mean, var, ok = mo.mean, np.where(n > 0, mo.var / np.where(n > 0, n, 1.0), 0.0), mo.defined
+        mean, _, ok = _cell_estimates(m, cell)
         if not np.all(ok):
             continue
-        res = interaction_wald(mean, var)
+        # compare cells within each pair of ramp phases, then pool (see stratified_interaction_wald)
+        strata = pd.factorize(pd.MultiIndex.from_arrays([f["phase_a"].to_numpy()[idx], f["phase_b"].to_numpy()[idx]]))[0]
+        per = np.zeros((int(strata.max()) + 1, R, C, 6))
+        np.add.at(per, (strata[keep], ka[keep], kb[keep]), values[idx][keep])
+        s_mean, s_var, s_ok = _cell_estimates(m, per)
+        res = stratified_interaction_wald(s_mean, np.where(s_ok, s_var, 0.0))
         if not bool(res.defined):
             continue
         base = float(mean[0, 0])
@@ -313,7 +329,8 @@ def _interaction_tests(m: MetricConfig, frame: pd.DataFrame, by_id: dict[str, Ex
                      for i in range(R - 1) for j in range(C - 1)]
         out.append({"kind": "interaction", "a": A, "b": B, "metric": m, "p": float(res.p_value),
                     "n": float(n.sum()),
-                    "stats": {"test": "Wald test of the interaction contrasts of cell means", "metric": m.name,
+                    "stats": {"test": "Wald test of the interaction contrasts of cell means, within pairs of "
+                                      "ramp phases and pooled by inverse variance", "metric": m.name,
                               "kind": m.kind, "units_shared": int(n.sum()), "wald": float(res.wald),
                               "df": int(res.df), "p_value": float(res.p_value), "contrasts": contrasts,
                               "cell_mean": {va: {vb: float(mean[ia[va], ib[vb]]) for vb in B.variants} for va in A.variants},

@@ -14,7 +14,10 @@ findings:
     (:func:`monitor.stats.effects.guardrail_status`): ``alert`` when the whole
     sequence lies beyond the margin on the bad side, ``warn`` when it excludes 0
     on the bad side but not the margin, ``ok`` otherwise. An established
-    improvement is ``ok``.
+    improvement is ``ok``. While the control mean is not yet bounded away from 0
+    the relative sequence is unbounded: no harm beyond the margin can be
+    established, and the status is ``warn`` if the difference's sequence excludes
+    0 on the bad side, else ``ok``.
 ``metric``
     Primary and diagnostic metrics get the same numbers with status ``ok``
     always: they inform, they never alert.
@@ -413,7 +416,11 @@ def guardrail_findings(experiments: Sequence[Experiment], pulls: Sequence[Metric
         est, vr = _compare(m, p, checks)
         direction = m.bad_direction or "increase"
         gs = fx.guardrail_status(est.rel_cs_lower, est.rel_cs_upper, direction, margin=m.margin,
-                                 defined=est.rel_defined)
+                                 defined=est.rel_defined & est.rel_bounded)
+        # no relative bound yet (the control mean is not bounded away from 0): a harm beyond the
+        # margin cannot be established, a harm at all can, from the difference's sequence
+        harm = (est.cs_lower > 0) if direction == "increase" else (est.cs_upper < 0)
+        status = np.where(est.rel_defined & ~est.rel_bounded, np.where(harm, "warn", "ok"), gs.status)
         multi = {e.id: sum(1 for v in e.variants if v != e.control) > 1 for e in p.experiments}
         stored: set[tuple[str, str]] = set()
         for i, e in enumerate(p.experiments):
@@ -423,7 +430,7 @@ def guardrail_findings(experiments: Sequence[Experiment], pulls: Sequence[Metric
                     stored.add((e.id, var))
                     snapshots.append(MetricSnapshot(e.id, m.name, var, p.since[i],
                                                     *(float(arms[c][i]) for c in STAT_COLUMNS)))
-            staged.append({"metric": m, "i": i, "est": est, "status": str(gs.status[i]), "vr": vr,
+            staged.append({"metric": m, "i": i, "est": est, "status": str(status[i]), "vr": vr,
                            "pairs": p, "scope": f"{m.name}:{v}" if multi[e.id] else m.name})
     # multiplicity, per experiment, over its judged guardrails
     adjust: dict[int, tuple[bool, float]] = {}
@@ -479,20 +486,26 @@ def _finding(s: dict[str, Any], adj: tuple[bool, float] | None, checks: CheckCon
         st = "warn" if (check == "guardrail" and measurable) else "ok"
         return Finding(e.id, check, s["scope"], st, f"{label}: {v} vs {e.control} cannot be judged: {why}", stats)
     level = f"{100 * (1 - alpha):g}%"
-    cs = f"always-valid {level} CS {_pct(row['rel_cs_lower'])} to {_pct(row['rel_cs_upper'])}"
+    if row["rel_cs_lower"] is not None:
+        cs = f"always-valid {level} CS {_pct(row['rel_cs_lower'])} to {_pct(row['rel_cs_upper'])}"
+        lo, up = row["rel_cs_lower"], row["rel_cs_upper"]
+    else:  # judged on the difference, whose sign is the direction of the change
+        cs = (f"no relative {level} CS yet: the {e.control} mean is not bounded away from 0; "
+              f"always-valid CS of the difference {_num(row['cs_lower'])} to {_num(row['cs_upper'])}")
+        lo, up = row["cs_lower"], row["cs_upper"]
     tail = f"e-value {_fmt_e(row['e_value'])}; fixed-horizon p={_fmt_p(row['p_value'])}"
     means = f"{_num(row['mean_treatment'])} vs {_num(row['mean_control'])}"
     head = f"{label}: {v} vs {e.control} {_pct(row['rel'])} ({means}; {cs})"
     if vr is not None:
         tail += f"; CUPED variance reduction {100 * float(np.mean(vr[i])):.0f}%"
     if check == "metric":
-        excl = row["rel_cs_lower"] > 0 or row["rel_cs_upper"] < 0
+        excl = lo > 0 or up < 0
         if not excl:
             verdict = "no change established yet"
         elif m.bad_direction is None:
             verdict = "a change is established"
         else:
-            bad = (row["rel_cs_lower"] > 0) == (m.bad_direction == "increase")
+            bad = (lo > 0) == (m.bad_direction == "increase")
             verdict = "a harm is established" if bad else "an improvement is established"
         return Finding(e.id, check, s["scope"], "ok", f"{head}: {verdict}; {tail}", stats)
     critical = False
@@ -503,7 +516,7 @@ def _finding(s: dict[str, Any], adj: tuple[bool, float] | None, checks: CheckCon
     elif status == "warn":
         verdict = f"harm established, possibly within the {100 * m.margin:g}% margin"
     else:
-        good = (row["rel_cs_upper"] < 0) if m.bad_direction == "increase" else (row["rel_cs_lower"] > 0)
+        good = (up < 0) if m.bad_direction == "increase" else (lo > 0)
         verdict = "an improvement is established" if good else "no harm established"
     if adj is not None and not adj[0] and status in ("alert", "warn"):
         verdict += (f", but not significant after {checks.guardrail_multiplicity.upper().replace('EBH', 'e-BH')} "

@@ -24,9 +24,13 @@ every run within one such period sees the same data and gives the same
 verdict, whatever the schedule, and with the default every look covers whole
 weeks (each weekday equally often).
 
-Why the verdict stays valid under repeated looks: the k-th look of a phase
-tests at ``look_alpha(novelty_alpha, k) = novelty_alpha * 6 / (pi^2 k^2)``,
-which sums to ``novelty_alpha`` over all looks, and the level is split
+Why the verdict stays valid under repeated looks: the budget is spent only on
+looks that can be judged. A look ``k`` covers ``k * novelty_look_days`` days, so
+at most ``k * novelty_look_days - 1`` ages are complete; the first look with
+``novelty_min_days`` of them is ``k0`` (2 with the defaults), and the k-th look
+tests at ``look_alpha(novelty_alpha, k) = novelty_alpha * 6 / (pi^2 j^2)`` with
+``j = k - k0 + 1`` (0 before ``k0``), which sums to ``novelty_alpha`` over all
+looks, and the level is split
 (Bonferroni) over the experiment's metrics x treatment variants. So the chance
 that a constant effect is *ever* flagged in an experiment's phase is at most
 ``novelty_alpha`` (union bound, no assumption on how the looks are correlated;
@@ -526,7 +530,8 @@ def _finding(s: dict[str, Any], family: dict[str, int], checks: CheckConfig) -> 
     days = int(rows.looks[i])
     look = max(days // checks.novelty_look_days, 1)
     fam = max(family.get(e.id, 1), 1)
-    threshold = float(nv.look_alpha(checks.novelty_alpha, look)) / fam
+    first = nv.first_judgeable_look(checks.novelty_look_days, checks.novelty_min_days)
+    threshold = float(nv.look_alpha(checks.novelty_alpha, look, first=first)) / fam
     per_age = [{"age": a, "units": {e.control: int(rows.n_c[i, a]), v: int(rows.n_t[i, a])},
                 "log_lift": float(rows.lift[i, a]), "se": float(rows.se[i, a]),
                 "effect_relative": _rel(rows.lift[i, a])}

@@ -21,14 +21,20 @@ share changes from phase to phase, makes the failure visible:
     (:func:`monitor.stats.interference.ratio_change`). A control group that
     gets worse as the treatment share rises is the footprint of spillover: the
     treatment takes something the control would otherwise have had. The trend
-    of this drift on the share is tested as in (a); a level shift common to all
-    phases (e.g. units are assigned when they are active) does not count.
+    of this drift on the share is computed as in (a) and reported as context,
+    but it is never evidence on its own: when exposure is logged during a session,
+    every unit's metric rises after exposure, in control too, by an amount that
+    depends on when the unit arrived (calendar trends, how much of its pre-period
+    lies before the data begin), so cohorts of different phases drift
+    differently without any interference. Only (a), which compares treatment with
+    control within the same phase (the same calendar window) over the same
+    post-exposure window, decides.
 
 Only live experiments with at least two ramp phases of different treatment
 share are checked; a phase counts when each compared variant has at least
-``spillover_min_units`` units with a complete window. The two p-values of each
-metric x treatment are Bonferroni-adjusted over all the experiment's metrics x
-treatments x 2 and compared with ``spillover_alpha``: the tests are
+``spillover_min_units`` units with a complete window. The effect-trend p-value of
+each metric x treatment is Bonferroni-adjusted over all the experiment's metrics x
+treatments and compared with ``spillover_alpha``: the tests are
 fixed-horizon, re-run every cycle, so the level is kept strict rather than
 claiming an always-valid guarantee. Assumptions: phases differ only in the
 share (no other change shipped at a ramp step); the effect does not change with
@@ -209,11 +215,11 @@ def spillover_findings(experiments: Sequence[Experiment], pulls: Sequence[Spillo
                 if v == e.control:
                     continue
                 staged.append(_judge_one(e, v, m, totals, checks, multi))
-    # Bonferroni within each experiment over its metrics x treatments x 2 tests
+    # Bonferroni within each experiment over its metrics x treatments (one judged test each)
     fam: dict[str, int] = {}
     for s in staged:
         if s["tested"]:
-            fam[s["e"].id] = fam.get(s["e"].id, 0) + 2
+            fam[s["e"].id] = fam.get(s["e"].id, 0) + 1
     out = []
     for s in staged:
         out.append(_finding(s, fam.get(s["e"].id, 0), checks))
@@ -272,7 +278,7 @@ def _judge_one(e: Experiment, v: str, m: MetricConfig, totals: pd.DataFrame, che
     eff = trend("effect_relative", "effect_relative_se")
     drift = trend("control_drift", "control_drift_se")
     return {"e": e, "v": v, "m": m, "phases": phases, "effect_trend": eff, "drift_trend": drift,
-            "tested": eff is not None or drift is not None,
+            "tested": eff is not None,
             "scope": f"{m.name}:{v}" if multi else m.name}
 
 
@@ -309,10 +315,12 @@ def _finding(s: dict[str, Any], family: int, checks: CheckConfig) -> Finding:
     eff, drift = s["effect_trend"], s["drift_trend"]
     alpha = checks.spillover_alpha
     for t in (eff, drift):
-        if t is not None:
+        if t is not None:  # the drift's is for reference: it is not part of the decision
             t["p_adjusted"] = min(1.0, t["p_value"] * max(family, 1))
     eff_sig = eff is not None and eff["p_adjusted"] < alpha
-    drift_sig = drift is not None and drift["p_adjusted"] < alpha
+    # the control's change against its own pre-period is context only, never evidence: when exposure
+    # is logged during activity every arm rises after exposure, by amounts that differ between phases
+    drift_sig = False
     direction, why = _bias_text(m, eff, drift, eff_sig, drift_sig)
     stats: dict[str, Any] = {
         "metric": m.name, "kind": m.kind, "control": e.control, "variant": v,
@@ -329,7 +337,7 @@ def _finding(s: dict[str, Any], family: int, checks: CheckConfig) -> Finding:
                        f"variant observed for a full {checks.spillover_window_days:g}-day window (two of different "
                        f"treatment share are needed)", stats)
     if eff_sig or drift_sig:
-        p_min = min(t["p_adjusted"] for t in (eff, drift) if t is not None)
+        p_min = eff["p_adjusted"]
         bias = {"overstated": "the estimate at low treatment shares likely overstates the effect of a full rollout",
                 "understated": "the estimate likely understates the effect of a full rollout",
                 "unclear": "the direction of the bias is unclear"}[direction]
@@ -342,6 +350,6 @@ def _finding(s: dict[str, Any], family: int, checks: CheckConfig) -> Finding:
         bits.append(f"effect trend {_fmt_pct(eff['slope_per_share'])} per 100% share, p={_fmt_p(eff['p_value'])}")
     if drift is not None:
         bits.append(f"control drift trend {_fmt_pct(drift['slope_per_share'])} per 100% share, "
-                    f"p={_fmt_p(drift['p_value'])}")
+                    f"p={_fmt_p(drift['p_value'])}, context only")
     return Finding(e.id, "spillover", s["scope"], "ok",
                    f"{label}: no change with the treatment share ({'; '.join(bits)})", stats)

@@ -111,6 +111,40 @@ def test_harm_within_margin_warns():
     assert g.status == "alert"
 
 
+def test_relative_alarm_needs_the_difference_to_exclude_zero():
+    # 1,000 readers per variant, 65 control and 35 treatment readers spend 10 each: the
+    # difference's always-valid sequence contains 0 (e-value 11.8 < 20), so a guardrail on
+    # "spend, decrease is bad" must not alert or warn; before the relative sequence was
+    # derived from the contrast sequences it reported -83% to -9% here and alerted.
+    m = _metric(name="spend", bad_direction="decrease")
+    sd = lambda k: math.sqrt((100 * k - 1000 * (k / 100) ** 2) / 999)
+    for c, t in ((65, 35), (35, 65)):
+        rows = [_row("exp", "control", 1000, c / 100, sd(c)), _row("exp", "treatment", 1000, t / 100, sd(t))]
+        (f,) = _one(m, rows).findings
+        st = f.statistics
+        assert f.status == "ok", f.summary
+        assert st["e_value"] == pytest.approx(11.8, abs=0.05)
+        assert st["cs_relative_lower"] < 0 < st["cs_relative_upper"]
+
+
+def test_rare_control_gives_no_relative_bound_but_judges_harm_on_the_difference():
+    m = _metric(name="failed_loans", kind="proportion", aggregate="any")
+    # 3 of 4,000 control units: the control rate is not bounded away from 0, so no relative
+    # sequence exists yet; the finding says so and is ok (the difference's sequence contains 0)
+    few = [{"experiment": "exp", "variant": "control", "hour": START, "n": 4000.0, "sum_y": 3.0, "sum_y2": 3.0},
+           {"experiment": "exp", "variant": "treatment", "hour": START, "n": 4000.0, "sum_y": 6.0, "sum_y2": 6.0}]
+    (f,) = _one(m, few).findings
+    assert f.status == "ok" and "no relative 95% CS yet" in f.summary
+    assert f.statistics["cs_relative_lower"] is None and f.statistics["effect_relative"] == pytest.approx(1.0)
+    _no_nan(f)
+    # 3 vs 60: harm is established by the difference's sequence, but no relative margin can be
+    # cleared while the control rate is unbounded: a warning, never an alert
+    many = [dict(few[0]), dict(few[1], sum_y=60.0, sum_y2=60.0)]
+    (g,) = _one(m, many).findings
+    assert g.status == "warn" and "harm established" in g.summary
+    _no_nan(g)
+
+
 def test_no_effect_is_ok():
     (f,) = _one(_metric(), [_row("exp", "control", 5000, 100.0, 30.0), _row("exp", "treatment", 5000, 100.2, 30.0)]).findings
     assert f.status == "ok" and "no harm established" in f.summary

@@ -102,11 +102,16 @@ def test_finding_carries_the_statistics_and_says_why_it_is_not_judged_yet():
     early = _run(cohort, treated, y, 6, checks)
     assert early.status == "ok" and early.statistics["classification"] == "not judged"
     assert "needed to judge" in early.summary
+    # the first weekly look has 6 complete ages, fewer than the 7 needed: not judged, no budget
+    week = _run(cohort, treated, y, 7, checks)
+    assert week.statistics["classification"] == "not judged" and week.statistics["look"] == 1
+    assert len(week.statistics["ages"]) == 6 and week.statistics["threshold"] == 0.0
     f = _run(cohort, treated, y, 14, checks)
     st = f.statistics
     assert f.check == "novelty" and f.scope == "sessions" and f.status == "ok"
     assert st["classification"] == "stable" and st["days"] == 14 and st["look"] == 2
-    assert st["threshold"] == pytest.approx(0.05 * 6 / (np.pi**2 * 4))
+    # look 2 is the first that can be judged with the defaults, so it gets the first share
+    assert st["threshold"] == pytest.approx(0.05 * 6 / np.pi**2)
     # the units at risk shrink with age: cohort d is observed for 13 - d whole days
     assert [a["age"] for a in st["ages"]] == list(range(13))
     n0 = st["ages"][0]["units"]

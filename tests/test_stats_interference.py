@@ -204,3 +204,36 @@ def test_independent_interaction_free_pairs_stay_quiet_at_the_nominal_rate():
     assert abs(np.mean(np.array(p_strat) < alpha) - alpha) < band
     assert abs(np.mean(np.array(p_int) < alpha) - alpha) < band
     assert np.mean(np.array(p_pool) < alpha) > 0.5  # why the test is stratified by phase
+
+
+def test_stratified_interaction_pools_strata_like_a_fixed_effect_meta_analysis():
+    # reference: statsmodels.stats.meta_analysis.combine_effects, fixed-effect (inverse-variance)
+    # pooling (W. G. Cochran, Biometrics 10(1), 1954); for a 2 x 2 table each stratum gives one
+    # contrast m11 - m10 - m01 + m00 with variance v11 + v10 + v01 + v00
+    from statsmodels.stats.meta_analysis import combine_effects
+
+    from monitor.stats.interference import interaction_wald, stratified_interaction_wald
+
+    rng = np.random.default_rng(9)
+    mean = rng.normal(1.0, 0.3, size=(4, 2, 2))
+    var = rng.uniform(0.01, 0.05, size=(4, 2, 2))
+    res = stratified_interaction_wald(mean, var)
+    eff = mean[:, 1, 1] - mean[:, 1, 0] - mean[:, 0, 1] + mean[:, 0, 0]
+    ref = combine_effects(eff, var.sum(axis=(1, 2)), use_t=False)
+    assert res.contrast[0, 0] == pytest.approx(ref.mean_effect_fe, rel=1e-10)
+    assert res.contrast_se[0, 0] ** 2 == pytest.approx(ref.var_eff_w_fe, rel=1e-10)
+    assert res.wald == pytest.approx(ref.mean_effect_fe**2 / ref.var_eff_w_fe, rel=1e-10)
+    # one stratum: the unstratified test; a stratum with a zero variance is left out
+    one = stratified_interaction_wald(mean[:1], var[:1])
+    plain = interaction_wald(mean[0], var[0])
+    assert one.wald == pytest.approx(plain.wald) and one.p_value == pytest.approx(plain.p_value)
+    var3 = var.copy()
+    var3[1:, 0, 0] = 0.0
+    assert stratified_interaction_wald(mean, var3).wald == pytest.approx(plain.wald)
+    # a 3 x 3 table: two strata of the same cells equal one stratum with halved variances
+    m3, v3 = rng.normal(size=(3, 3)), rng.uniform(0.1, 0.2, size=(3, 3))
+    twice = stratified_interaction_wald(np.stack([m3, m3]), np.stack([v3, v3]))
+    half = interaction_wald(m3, v3 / 2)
+    np.testing.assert_allclose(twice.contrast, half.contrast)
+    assert twice.wald == pytest.approx(half.wald) and int(twice.df) == 4
+    assert not bool(stratified_interaction_wald(mean, np.zeros_like(var)).defined)

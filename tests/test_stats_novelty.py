@@ -8,6 +8,7 @@ import pytest
 import statsmodels.api as sm
 from statsmodels.stats.meta_analysis import combine_effects
 
+from monitor.config import CheckConfig
 from monitor.errors import ConfigError
 from monitor.stats import novelty as nv
 
@@ -107,6 +108,29 @@ def test_look_alpha_sums_to_alpha():
     k = np.arange(1, 200_001)
     assert nv.look_alpha(0.05, k).sum() == pytest.approx(0.05, rel=1e-4)
     assert nv.look_alpha(0.05, 1) == pytest.approx(0.05 * 6 / np.pi**2)
+
+
+def test_no_budget_is_spent_on_looks_that_cannot_be_judged():
+    # With the defaults (a look every 7 days, 7 usable ages needed) the day-7 look has at most
+    # 6 complete ages (age a needs a + 1 whole days), so it is never judged: it must get no
+    # budget, and the whole budget (still <= novelty_alpha in total) goes to judgeable looks.
+    checks = CheckConfig()
+    first = nv.first_judgeable_look(checks.novelty_look_days, checks.novelty_min_days)
+    assert first == 2
+    assert 7 * first - 1 >= checks.novelty_min_days > 7 * (first - 1) - 1
+    k = np.arange(1, 200_001)
+    spent = nv.look_alpha(checks.novelty_alpha, k, first=first)
+    assert spent[0] == 0.0
+    assert spent.sum() <= checks.novelty_alpha
+    assert spent.sum() == pytest.approx(checks.novelty_alpha, rel=1e-4)
+    # the first judged look now gets the largest share, 6 / pi^2 (about 61%) of the budget
+    assert spent[1] == pytest.approx(checks.novelty_alpha * 6 / np.pi**2)
+    # other settings: a daily look needs min_days + 1 days; a 28-day look is judged at once
+    assert nv.first_judgeable_look(1, 7) == 8
+    assert nv.first_judgeable_look(28, 7) == 1
+    assert nv.first_judgeable_look(7, 13) == 2 and nv.first_judgeable_look(7, 14) == 3
+    with pytest.raises(ConfigError):
+        nv.first_judgeable_look(0, 7)
 
 
 @pytest.mark.slow

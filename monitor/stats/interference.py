@@ -55,6 +55,7 @@ __all__ = [
     "independence_chi2",
     "interaction_wald",
     "ratio_change",
+    "stratified_interaction_wald",
 ]
 
 
@@ -343,17 +344,8 @@ def interaction_wald(mean: object, var: object) -> InteractionResult:
     defined = np.all(np.isfinite(v) & (v > 0) & np.isfinite(m), axis=(-1, -2))
     m0 = np.where(np.isfinite(m), m, 0.0)
     v0 = np.where(np.isfinite(v) & (v > 0), v, 1.0)
-    # contrast matrix L: ((R-1)(C-1), R*C)
-    D = (R - 1) * (C - 1)
-    L = np.zeros((D, R * C))
-    d = 0
-    for i in range(1, R):
-        for j in range(1, C):
-            L[d, i * C + j] += 1
-            L[d, i * C] -= 1
-            L[d, j] -= 1
-            L[d, 0] += 1
-            d += 1
+    L = _interaction_matrix(R, C)
+    D = L.shape[0]
     flat_m = m0.reshape(*m0.shape[:-2], R * C)
     flat_v = v0.reshape(*v0.shape[:-2], R * C)
     c = flat_m @ L.T
@@ -369,6 +361,76 @@ def interaction_wald(mean: object, var: object) -> InteractionResult:
         np.where(defined[..., None], se, 0.0).reshape(shape),
         wald, np.full(wald.shape, D), p, defined,
     )
+
+
+def _interaction_matrix(R: int, C: int) -> np.ndarray:
+    """Contrast matrix ``L``, shape ``((R-1)(C-1), R*C)``, of the interactions of an R x C table."""
+    L = np.zeros(((R - 1) * (C - 1), R * C))
+    d = 0
+    for i in range(1, R):
+        for j in range(1, C):
+            L[d, i * C + j] += 1
+            L[d, i * C] -= 1
+            L[d, j] -= 1
+            L[d, 0] += 1
+            d += 1
+    return L
+
+
+def stratified_interaction_wald(mean: object, var: object) -> InteractionResult:
+    """Interaction of two factors estimated within strata and pooled across them.
+
+    Parameters
+    ----------
+    mean, var : array_like, shape (S, R, C)
+        Cell estimates and their variances per stratum (e.g. per pair of ramp phases of the two
+        experiments); strata with a cell of non-positive or non-finite variance are left out.
+
+    Returns
+    -------
+    InteractionResult
+        Scalar-shaped result: the inverse-variance weighted (fixed-effect) combination of the
+        per-stratum contrast vectors ``c_s = L m_s`` with covariances ``S_s = L V_s L'``,
+        ``c = (sum S_s^-1)^-1 sum S_s^-1 c_s``, and the Wald statistic ``c' (sum S_s^-1) c`` on
+        ``(R - 1)(C - 1)`` degrees of freedom; undefined when no stratum is usable.
+
+    Notes
+    -----
+    Comparing cells only within a stratum removes differences *between* strata from the
+    contrast: when two experiments ramp at different times, units of different phase pairs
+    arrived at different calendar times and have been observed for different lengths of time,
+    and the four variant combinations mix those cohorts in different proportions. Within one
+    pair of phases the variants of both experiments are drawn with fixed weights, independently
+    of arrival, so the cells are comparable. Pooling independent strata by inverse variance is
+    the usual fixed-effect combination (W. G. Cochran, "The combination of estimates from
+    different experiments", Biometrics 10(1), 101-129, 1954).
+    """
+    m = np.asarray(mean, dtype=float)
+    v = np.asarray(var, dtype=float)
+    if m.ndim != 3 or m.shape != v.shape or m.shape[1] < 2 or m.shape[2] < 2:
+        raise ConfigError("stratified_interaction_wald needs mean and var shaped (S, R >= 2, C >= 2)")
+    _, R, C = m.shape
+    L = _interaction_matrix(R, C)
+    D = L.shape[0]
+    usable = np.all(np.isfinite(v) & (v > 0) & np.isfinite(m), axis=(1, 2))
+    info = np.zeros((D, D))
+    score = np.zeros(D)
+    for k in np.flatnonzero(usable):
+        cov_k = L @ np.diag(v[k].ravel()) @ L.T
+        inv = np.linalg.inv(cov_k)
+        info += inv
+        score += inv @ (L @ m[k].ravel())
+    defined = bool(usable.any())
+    if defined:
+        cov = np.linalg.inv(info)
+        c = cov @ score
+        wald = float(max(c @ info @ c, 0.0))
+        se = np.sqrt(np.diag(cov))
+        p = float(stats.chi2.sf(wald, D))
+    else:
+        c, se, wald, p = np.zeros(D), np.zeros(D), 0.0, 1.0
+    return InteractionResult(c.reshape(R - 1, C - 1), se.reshape(R - 1, C - 1), np.asarray(wald),
+                             np.asarray(D), np.asarray(p), np.asarray(defined))
 
 
 @dataclass(frozen=True)

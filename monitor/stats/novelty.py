@@ -53,6 +53,7 @@ __all__ = [
     "ConvergedEffect",
     "age_trend",
     "converged_effect",
+    "first_judgeable_look",
     "look_alpha",
 ]
 
@@ -359,14 +360,31 @@ def converged_effect(effect: object, se: object, age: object, *, mask: object | 
     )
 
 
-def look_alpha(alpha: float, look: object) -> np.ndarray:
-    """Error rate spent at the ``look``-th daily look: ``alpha * 6 / (pi^2 look^2)``.
+def first_judgeable_look(look_days: int, min_days: int) -> int:
+    """The first look that can have ``min_days`` usable ages, looks being ``look_days`` apart.
 
-    The levels sum to ``alpha`` over looks 1, 2, 3, ... (sum of ``1 / k^2`` is
-    ``pi^2 / 6``), so by the union bound the chance of *ever* flagging a
-    constant effect, over any number of daily looks, is at most ``alpha``. A
-    simple alpha-spending rule (common practice); it needs no assumption about
-    how the looks are correlated and is conservative for that reason.
+    At the look ``k`` the data cover ``k * look_days`` whole days since the first
+    exposure day, and an age ``a`` is complete for some unit only when ``a + 1``
+    whole days have passed since that unit's first exposure, so at most
+    ``k * look_days - 1`` ages are usable. The first look with ``min_days`` of
+    them is ``ceil((min_days + 1) / look_days)`` (2 with the defaults 7 and 7).
     """
-    k = np.maximum(np.asarray(look, dtype=np.float64), 1.0)
-    return alpha * 6.0 / (np.pi**2 * k**2)
+    if look_days < 1 or min_days < 0:
+        raise ConfigError(f"look_days must be >= 1 and min_days >= 0, got {look_days} and {min_days}")
+    return max(1, -(-(min_days + 1) // look_days))
+
+
+def look_alpha(alpha: float, look: object, *, first: int = 1) -> np.ndarray:
+    """Error rate spent at the ``look``-th look: ``alpha * 6 / (pi^2 j^2)``, ``j = look - first + 1``.
+
+    The levels sum to ``alpha`` over looks ``first``, ``first + 1``, ... (sum of
+    ``1 / j^2`` is ``pi^2 / 6``), so by the union bound the chance of *ever*
+    flagging a constant effect, over any number of looks, is at most ``alpha``.
+    Looks before ``first`` (those that cannot be judged, see
+    :func:`first_judgeable_look`) get 0, so no budget is spent where no test is
+    made. A simple alpha-spending rule (common practice); it needs no assumption
+    about how the looks are correlated and is conservative for that reason.
+    """
+    k = np.asarray(look, dtype=np.float64)
+    j = np.maximum(k - (first - 1), 1.0)
+    return np.where(k >= first, alpha * 6.0 / (np.pi**2 * j**2), 0.0)
