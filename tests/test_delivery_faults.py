@@ -405,8 +405,8 @@ def test_two_processes_one_outage_send_one_failing_and_one_recovered_notice(tmp_
         cfg_path = _config(tmp_path, smtp_port=9, hooks={"desk": rx.url("desk"), "pager": rx.url("pager")}, warehouse=True)
         cfg = load_config(cfg_path)
         run_cycle(cfg)  # a healthy store to start from
-        env = {**os.environ, "PYTHONPATH": str(ROOT)}
-        a = subprocess.Popen([sys.executable, "-c", _PROCESS_A, str(tmp_path)], env=env,
+        # -P: the second process imports the installed package, as this one does, not the checkout
+        a = subprocess.Popen([sys.executable, "-P", "-c", _PROCESS_A, str(tmp_path)],
                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
         try:
             t0 = time.monotonic()

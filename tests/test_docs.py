@@ -26,7 +26,10 @@ def test_readme_opens_with_the_job_and_a_two_command_quickstart():
     assert len(cmds) == 2
     assert "expwatch demo" in cmds[0] and "pytest" in cmds[1]
     ci = (ROOT / ".ci" / "run").read_text()
-    assert ".venv/bin/python -m pytest" in cmds[1] and ".venv/bin/python -m pytest" in ci
+    # the suite runs against the installed package (pytest's own script puts no checkout on sys.path),
+    # and CI runs both commands as the README writes them
+    assert cmds[1].endswith(".venv/bin/pytest")
+    assert "## Quickstart" in ci and 'bash -c "${quickstart[0]}"' in ci and 'bash -c "${quickstart[1]}"' in ci
 
 
 def test_readme_says_it_is_decision_support():

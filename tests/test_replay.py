@@ -215,7 +215,7 @@ def test_quietness_counts_flaps_and_reopenings():
 def test_quietness_bench_script_runs(demo, capsys, tmp_path):
     """The quietness benchmark (tests/bench/quietness.py) end to end on two days of the demo
     (figures are not asserted), and again on the JSON it saved."""
-    from tests.bench.quietness import main as bench
+    from bench.quietness import main as bench
 
     saved = tmp_path / "replay.json"
     args = ["--dir", str(demo["dir"]), "--from", "2026-11-28T09:00Z", "--to", "2026-11-30T09:00Z", "--allocation-only"]
