@@ -76,6 +76,9 @@ class WarehouseConfig(_Model):
     """DuckDB only: worker threads (default: one per core)."""
     spill_directory: str | None = None
     """DuckDB only: where it spills; default a per-run folder under the system temp directory."""
+    readable_directories: list[str] | None = None
+    """DuckDB only: folders whose files the queries may read (read_parquet, read_csv...; relative paths: to the
+    config file). Every other file outside the warehouse and the spill folder is refused."""
     work_mem: Annotated[str, Field(pattern=r"^\s*\d+\s*(kB|MB|GB|TB)\s*$")] | None = None
     """PostgreSQL only: ``work_mem`` of the monitor's sessions (e.g. "256MB"), the memory each sort or hash
     of a query may use before it spills to temporary files. Default: the server's (4MB unless changed)."""
@@ -84,7 +87,7 @@ class WarehouseConfig(_Model):
     def _one_engine(self) -> WarehouseConfig:
         if (self.url is None) == (self.spark is None):
             raise ValueError("give exactly one of 'url' (a SQLAlchemy URL) or 'spark'")
-        duck_only = [k for k in ("memory_limit", "threads", "spill_directory") if getattr(self, k) is not None]
+        duck_only = [k for k in ("memory_limit", "threads", "spill_directory", "readable_directories") if getattr(self, k) is not None]
         if duck_only and not (self.url or "").startswith("duckdb:"):
             raise ValueError(f"{', '.join(duck_only)}: DuckDB settings, but the warehouse is not a duckdb: URL")
         if self.work_mem is not None and not (self.url or "").startswith("postgresql"):
@@ -383,7 +386,8 @@ def _format_error(where: str, exc: ValidationError) -> str:
 def _resolve_warehouse(wh: WarehouseConfig, base: Path) -> WarehouseConfig:
     """Relative DuckDB/SQLite URLs and Spark Parquet paths, relative to the config file."""
     if wh.spark is None:
-        return wh.model_copy(update={"url": _resolve_file_url(wh.url or "", base)})
+        readable = [str((base / d).resolve()) for d in wh.readable_directories] if wh.readable_directories else None
+        return wh.model_copy(update={"url": _resolve_file_url(wh.url or "", base), "readable_directories": readable})
     paths = {k: v if re.match(r"^[A-Za-z][A-Za-z0-9+.-]*:", v) or Path(v).is_absolute() else str((base / v).resolve())
              for k, v in wh.spark.parquet.items()}
     return wh.model_copy(update={"spark": wh.spark.model_copy(update={"parquet": paths})})
@@ -402,7 +406,31 @@ def _resolve_file_url(url: str, base: Path) -> str:
     return f"{m.group(1)}{m.group(2) or ''}:///{absolute}{sep}{query}"
 
 
+def _user_sql(cfg: Config) -> list[tuple[str, str]]:
+    """Every user-supplied ``sql:`` with its key."""
+    out = [("registry.sql", cfg.registry.sql), ("assignments.sql", cfg.assignments.sql)]
+    out += [(f"stages[{i}].sql", s.sql) for i, s in enumerate(cfg.stages)]
+    for i, m in enumerate(cfg.metrics):
+        out.append((f"metrics[{i}].sql", m.sql))
+        if m.denominator is not None:
+            out.append((f"metrics[{i}].denominator.sql", m.denominator.sql))
+    return [(key, sql) for key, sql in out if sql is not None]
+
+
+def _check_read_only(cfg: Config, where: str) -> None:
+    """Each ``sql:`` must be one read-only SELECT (:mod:`monitor.sqlguard`), in the warehouse's dialect."""
+    from monitor.sqlguard import check_select, sqlglot_dialect
+
+    backend = "spark" if cfg.warehouse.spark is not None else (cfg.warehouse.url or "").split(":", 1)[0]
+    dialect = sqlglot_dialect(backend)
+    for key, sql in _user_sql(cfg):
+        problem = check_select(sql, dialect)
+        if problem is not None:
+            raise ConfigError(f"{where}: {key}: {problem}")
+
+
 def _check_semantics(cfg: Config, where: str) -> None:
+    _check_read_only(cfg, where)
     for i, exp in enumerate(cfg.registry.inline or []):
         key = f"registry.inline[{i}]"
         for j, ph in enumerate(exp.phases):
