@@ -179,6 +179,10 @@ class CheckConfig(_Model):
     leakage_warn_share: Annotated[float, Field(ge=0, le=1)] = 0.001
     leakage_alert_share: Annotated[float, Field(ge=0, le=1)] = 0.01
     unknown_variant_alert_share: Annotated[float, Field(ge=0, le=1)] = 0.01
+    unattributed_warn_share: Annotated[float, Field(ge=0, le=1)] = 0.001
+    """Unattributed check: share of an experiment's assignment rows with a NULL unit id or timestamp that warns."""
+    unattributed_alert_share: Annotated[float, Field(ge=0, le=1)] = 0.01
+    """Unattributed check: share that alerts (critical at critical_factor times it)."""
     freshness_gap_hours: Annotated[float, Field(gt=0)] = 6.0
     freshness_baseline_days: Annotated[int, Field(ge=1, le=60)] = 7
     srm_critical_deviation: Annotated[float, Field(gt=0, lt=1)] = 0.1
@@ -214,6 +218,8 @@ class CheckConfig(_Model):
     def _order(self) -> CheckConfig:
         if self.leakage_warn_share > self.leakage_alert_share:
             raise ValueError("leakage_warn_share must not exceed leakage_alert_share")
+        if self.unattributed_warn_share > self.unattributed_alert_share:
+            raise ValueError("unattributed_warn_share must not exceed unattributed_alert_share")
         return self
 
 
@@ -478,6 +484,26 @@ def parse_config(data: Any, *, where: str = "<config>", base_dir: Path | None = 
     return cfg
 
 
+def _refuse_repeated_keys(node: yaml.Node | None, where: str, path: str = "") -> None:
+    """A key given twice in one mapping is an error: YAML loaders keep the last one silently,
+    so a second ``metrics:`` would replace every metric of the first."""
+    if isinstance(node, yaml.MappingNode):
+        seen: set[str] = set()
+        for key_node, value_node in node.value:
+            key = str(key_node.value)
+            if key == "<<":  # a merge key may repeat
+                continue
+            full = f"{path}.{key}" if path else key
+            if key in seen:
+                raise ConfigError(f"{where}: line {key_node.start_mark.line + 1}: key {full!r} is given twice "
+                                  "(the second would silently replace the first)")
+            seen.add(key)
+            _refuse_repeated_keys(value_node, where, full)
+    elif isinstance(node, yaml.SequenceNode):
+        for i, item in enumerate(node.value):
+            _refuse_repeated_keys(item, where, f"{path}[{i}]")
+
+
 def load_config(path: str | os.PathLike[str]) -> Config:
     """Read, interpolate and validate a YAML configuration file.
 
@@ -495,6 +521,7 @@ def load_config(path: str | os.PathLike[str]) -> Config:
     except OSError as exc:
         raise ConfigError(f"{where}: cannot be read ({exc.strerror})") from None
     try:
+        _refuse_repeated_keys(yaml.compose(text, Loader=yaml.SafeLoader), where)
         data = yaml.safe_load(text)
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None)

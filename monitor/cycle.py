@@ -36,6 +36,7 @@ from monitor.registry import Experiment, RegistryProblem, experiments_from_frame
 from monitor.spillover import pull_spillover, spillover_findings
 from monitor.state import StateStore
 from monitor.templates import Quoter, registry_context, render
+from monitor.unattributed import pull_unattributed, unattributed_findings
 from monitor.warehouse import Tracer, Warehouse, open_warehouse
 
 __all__ = ["CycleResult", "load_registry", "metric_findings", "run_cycle"]
@@ -151,12 +152,15 @@ def run_cycle(
             live = [e for e in exps if e.live_at(as_of, cfg.registry.live_status)]
             sources = pull_sources(cfg, wh, state, live, as_of, full_refresh=full_refresh,
                                    on_query=(lambda n: on_step(f"assignments[{n}]")) if on_step else None)
+            # rows the assignment query leaves out (NULL unit, timestamp or experiment) are counted, not lost
+            unattributed = pull_unattributed(cfg, wh, live, as_of)
             if on_step:
                 on_step("checks")
             counts = {s.name: s.counts for s in sources}
             timings: dict[str, float] = {}
             t_check = time.perf_counter()
             found = design_findings(problems) + allocation_findings(live, counts, cfg.sources[0].name, as_of, cfg.checks)
+            found += unattributed_findings(live, unattributed, cfg.checks)
             # every SRM alert carries its diagnosis (when, which slice, which stage), from the counts already pulled
             found = attach_diagnoses(found, counts, live, cfg, as_of=as_of)
             timings["allocation"] = time.perf_counter() - t_check
