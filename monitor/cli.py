@@ -237,8 +237,14 @@ def _run(cfg: Config, args: argparse.Namespace, console: Console, err: Console, 
     from monitor.observe import log_cycle
 
     log_cycle(result, time.monotonic() - t0, cfg.state.url)
-    _write_metrics(cfg, args, ok=True)
-    return 0
+    try:
+        _write_metrics(cfg, args, ok=not result.failed_checks)
+    except MonitorError as exc:  # the run is recorded: a metrics file we cannot write is not a failed run
+        err.print(f"expwatch: warning: the run was recorded, but {exc}", highlight=False, soft_wrap=True)
+    for check, message in result.failed_checks.items():
+        err.print(f"expwatch: check {check} could not run ({message}); the other checks were recorded",
+                  highlight=False, soft_wrap=True)
+    return 1 if result.failed_checks else 0
 
 
 def _write_metrics(cfg: Config, args: argparse.Namespace, *, ok: bool) -> None:

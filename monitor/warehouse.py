@@ -311,6 +311,26 @@ class Warehouse:
         stmt = self._statement(name, sql, params, expanding)
         t0 = time.perf_counter()
         try:
+            frame, scanned, read_bytes = self._run_query(name, stmt, params)
+        except BaseException:
+            self._recover()
+            raise
+        seconds = time.perf_counter() - t0
+        self.stats.append(QueryStats(name, seconds, len(frame), scanned, read_bytes))
+        log.info("query %s: %d rows in %.2fs", name, len(frame), seconds)
+        return frame
+
+    def _recover(self) -> None:
+        """After a failed query on the pinned session, end its aborted transaction so the
+        run's later queries (other checks) can still use it; committed temp tables stay."""
+        if self._pinned is not None:
+            try:
+                self._pinned.rollback()
+            except Exception:  # the connection is broken: the next query reports it
+                log.debug("warehouse: rollback after a failed query failed", exc_info=True)
+
+    def _run_query(self, name: str, stmt: sa.TextClause, params: Mapping[str, Any]) -> tuple[pd.DataFrame, Any, Any]:
+        try:
             with nullcontext(self._pinned) if self._pinned is not None else self.engine.connect() as conn:
                 result = conn.execute(stmt, dict(params))
                 cols = list(result.keys())
@@ -324,10 +344,7 @@ class Warehouse:
             raise WarehouseError(f"query {name} failed on {self.dialect.name}: {_first_line(exc)}{self._memory_hint(exc)}") from exc
         except Exception as exc:  # driver errors that are not DBAPI errors (e.g. duckdb.IOException)
             raise WarehouseError(f"warehouse {safe_url(self.url)}: query {name}: {_first_line(exc)}") from exc
-        seconds = time.perf_counter() - t0
-        self.stats.append(QueryStats(name, seconds, len(frame), scanned, read_bytes))
-        log.info("query %s: %d rows in %.2fs", name, len(frame), seconds)
-        return frame
+        return frame, scanned, read_bytes
 
     def _fetch_frame(self, result: sa.CursorResult[Any], cols: list[str]) -> pd.DataFrame:
         """Rows as a DataFrame, without per-row Python work where the driver can
