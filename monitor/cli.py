@@ -10,6 +10,7 @@ never a traceback (``--verbose`` adds it).
 from __future__ import annotations
 
 import argparse
+import difflib
 import logging
 import sys
 import time
@@ -175,6 +176,8 @@ def _notify_parsers(sub: Any, common: Any) -> None:
     mu.add_argument("--until", required=True, metavar="DATE",
                     help="ISO 8601 time, or a date meaning the end of that day (UTC)")
     mu.add_argument("--reason", required=True, metavar="TEXT", help="why; shown beside the muted alerts")
+    mu.add_argument("--not-yet-seen", action="store_true",
+                    help="allow an experiment neither the registry nor the alert ledger knows yet (else: a usage error)")
 
     um = sub.add_parser("unmute", help="remove a mute", description="Remove the mute of an experiment (or of one check).")
     um.add_argument("experiment", metavar="EXPERIMENT", help="the experiment id")
@@ -269,8 +272,14 @@ def _run(cfg: Config, args: argparse.Namespace, console: Console, err: Console, 
     else:
         print_text(result, console)
     log_cycle(result, time.monotonic() - t0, cfg.state.url)
-    _write_metrics(cfg, args, ok=True)
-    return 0
+    try:
+        _write_metrics(cfg, args, ok=not result.failed_checks)
+    except MonitorError as exc:  # the run is recorded: a metrics file we cannot write is not a failed run
+        err.print(f"expwatch: warning: the run was recorded, but {exc}", highlight=False, soft_wrap=True)
+    for check, message in result.failed_checks.items():
+        err.print(f"expwatch: check {check} could not run ({message}); the other checks were recorded",
+                  highlight=False, soft_wrap=True)
+    return 1 if result.failed_checks else 0
 
 
 def _write_metrics(cfg: Config, args: argparse.Namespace, *, ok: bool) -> None:
@@ -319,6 +328,12 @@ def _replay(cfg: Config, args: argparse.Namespace, err: Console) -> int:
     every = parse_every(args.every)
     start, end = _parse_time(args.start, option="--from"), _parse_time(args.end, option="--to")
     onsets = _parse_onsets(args.onset)
+    if onsets:
+        known = _registry_names(cfg)
+        for key in onsets:
+            name = key[0] if isinstance(key, tuple) else key
+            if name not in known:
+                raise ConfigError(f"--onset: unknown experiment {name!r} (not in the registry)")
     t0 = time.monotonic()
 
     def on_step(i: int, n: int, as_of: datetime) -> None:
@@ -376,9 +391,60 @@ def _until(text: str) -> datetime:
     return datetime(d.year, d.month, d.day, tzinfo=timezone.utc) + timedelta(days=1)
 
 
+def _require_state(cfg: Config, command: str) -> None:
+    """Commands that only read the state store refuse one that does not exist (a mistyped
+    state.url would otherwise create an empty store and report "0 open alerts")."""
+    from monitor.state import StateStore
+    from monitor.warehouse import safe_url
+
+    url = cfg.state.url or ""
+    if url.startswith("sqlite:///"):
+        path = Path(url.removeprefix("sqlite:///").split("?")[0])
+        if not path.is_file():
+            raise ConfigError(f"{command}: no state store at {path} (state.url in {cfg.where}); "
+                              "'expwatch run' creates it")
+        return
+    state = StateStore(url, migrate=False)
+    try:
+        if not state.schema_version():
+            raise ConfigError(f"{command}: the state store {safe_url(url)} holds no expwatch tables "
+                              f"(state.url in {cfg.where}); 'expwatch run' creates them")
+    finally:
+        state.dispose()
+
+
+def _known_experiments(cfg: Config, state: Any) -> set[str]:
+    """Experiment ids the alert ledger has seen, else those the registry names now."""
+    import sqlalchemy as sa
+
+    from monitor.state import findings
+
+    with state.engine.connect() as conn:
+        if sa.inspect(conn).has_table(findings.name):
+            seen = {r[0] for r in conn.execute(sa.select(findings.c.experiment).distinct())}
+            if seen:
+                return seen
+    return _registry_names(cfg)
+
+
+def _registry_names(cfg: Config) -> set[str]:
+    from monitor.cycle import load_registry
+    from monitor.warehouse import open_warehouse
+
+    wh = open_warehouse(cfg.warehouse) if cfg.registry.inline is None else None
+    try:
+        exps, problems = load_registry(cfg, wh)
+    finally:
+        if wh is not None:
+            wh.dispose()
+    return {e.id for e in exps} | {p.experiment for p in problems}
+
+
 def _notify_command(cfg: Config, args: argparse.Namespace, err: Console) -> int:
     from monitor.state import StateStore
 
+    if args.command in ("digest", "alerts"):
+        _require_state(cfg, args.command)
     state = StateStore(cfg.state.url or "")
     try:
         if args.command == "digest":
@@ -487,6 +553,13 @@ def _alerts(args: argparse.Namespace, state: Any, clear_hours: float) -> int:
 def _mute(args: argparse.Namespace, state: Any, err: Console) -> int:
     from monitor.outbox import mute
 
+    if not args.not_yet_seen:
+        known = _known_experiments(args.cfg, state)
+        if args.experiment not in known:
+            close = difflib.get_close_matches(args.experiment, sorted(known), n=1)
+            hint = f"; did you mean {close[0]!r}?" if close else ""
+            raise ConfigError(f"mute: unknown experiment {args.experiment!r}: neither the alert ledger nor the "
+                              f"registry knows it{hint} (--not-yet-seen mutes it anyway)")
     m = mute(state.engine, args.experiment, _check_arg(args.check), _until(args.until), args.reason)
     what = f"{m.experiment} · {m.check}" if m.check else f"{m.experiment} (every check)"
     err.print(f"mute: {what} muted until {m.until:%Y-%m-%d %H:%M} UTC", highlight=False, soft_wrap=True)
@@ -503,15 +576,46 @@ def _unmute(args: argparse.Namespace, state: Any, err: Console) -> int:
     return 0
 
 
+#: A message with every field the outbox puts in an alert notice, for checking templates.
+_SAMPLE_NOTICE = {
+    "format": "expwatch.notice/1", "kind": "alerts", "run_id": "validate", "as_of": "2026-01-01T00:00:00Z",
+    "header": "expwatch · 1 opened · as of 2026-01-01 00:00 UTC", "lines": ["ALERT sample · srm · assigned: sample"],
+    "events": [{"event": "opened", "experiment": "sample", "title": "sample", "owner": "sample", "check": "srm",
+                "scope": "assigned", "severity": "alert", "summary": "sample"}],
+}
+
+
+def _validate_webhooks(cfg: Config, console: Console) -> None:
+    """What would otherwise fail only at send time: a missing or unreadable template, one
+    that does not render JSON, an unset hmac_secret_env."""
+    import os
+
+    from monitor.notify import render_body
+
+    for i, hook in enumerate(cfg.notify.webhooks):
+        key = f"{cfg.where}: notify.webhooks[{i}]"
+        if hook.template is not None and not Path(hook.template).is_file():
+            raise ConfigError(f"{key}.template: no such file {hook.template}")
+        try:
+            render_body(_SAMPLE_NOTICE, hook)
+        except ConfigError as exc:
+            raise ConfigError(f"{key}.template: {exc}") from None
+        if hook.hmac_secret_env and not os.environ.get(hook.hmac_secret_env):
+            raise ConfigError(f"{key}.hmac_secret_env: environment variable {hook.hmac_secret_env} is not set")
+        console.print(f"webhook    ok    {hook.name}: template renders JSON"
+                      + (", signing secret set" if hook.hmac_secret_env else ""))
+
+
 def _validate(cfg: Config, console: Console) -> int:
     from monitor.cycle import load_registry
     from monitor.pull import render_source_sql
     from monitor.state import StateStore
     from monitor.warehouse import open_warehouse, safe_url
 
+    console.print(f"config     ok    {cfg.where}")
+    _validate_webhooks(cfg, console)
     wh = open_warehouse(cfg.warehouse)
     try:
-        console.print(f"config     ok    {cfg.where}")
         exps, problems = load_registry(cfg, wh)
         console.print(f"warehouse  ok    {wh.label} ({wh.dialect.name}, read-only)")
         console.print(f"registry   ok    {len(exps)} experiments" + (f", {len(problems)} with registry problems" if problems else ""))
@@ -695,8 +799,10 @@ def _dispatch(args: argparse.Namespace, console: Console, err: Console) -> int:
         if args.command == "replay":
             return _replay(cfg, args, err)
         if args.command == "status":
+            _require_state(cfg, "status")
             return _status(cfg, args)
         if args.command in ("digest", "alerts", "mute", "unmute"):
+            args.cfg = cfg
             return _notify_command(cfg, args, err)
     except MonitorError as exc:
         return _fail(exc, str(exc), "error", exc.exit_code, args.verbose)

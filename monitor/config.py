@@ -77,6 +77,9 @@ class WarehouseConfig(_Model):
     """DuckDB only: worker threads (default: one per core)."""
     spill_directory: str | None = None
     """DuckDB only: where it spills; default a per-run folder under the system temp directory."""
+    readable_directories: list[str] | None = None
+    """DuckDB only: folders whose files the queries may read (read_parquet, read_csv...; relative paths: to the
+    config file). Every other file outside the warehouse and the spill folder is refused."""
     work_mem: Annotated[str, Field(pattern=r"^\s*\d+\s*(kB|MB|GB|TB)\s*$")] | None = None
     """PostgreSQL only: ``work_mem`` of the monitor's sessions (e.g. "256MB"), the memory each sort or hash
     of a query may use before it spills to temporary files. Default: the server's (4MB unless changed)."""
@@ -85,7 +88,7 @@ class WarehouseConfig(_Model):
     def _one_engine(self) -> WarehouseConfig:
         if (self.url is None) == (self.spark is None):
             raise ValueError("give exactly one of 'url' (a SQLAlchemy URL) or 'spark'")
-        duck_only = [k for k in ("memory_limit", "threads", "spill_directory") if getattr(self, k) is not None]
+        duck_only = [k for k in ("memory_limit", "threads", "spill_directory", "readable_directories") if getattr(self, k) is not None]
         if duck_only and not (self.url or "").startswith("duckdb:"):
             raise ValueError(f"{', '.join(duck_only)}: DuckDB settings, but the warehouse is not a duckdb: URL")
         if self.work_mem is not None and not (self.url or "").startswith("postgresql"):
@@ -179,6 +182,10 @@ class CheckConfig(_Model):
     leakage_warn_share: Annotated[float, Field(ge=0, le=1)] = 0.001
     leakage_alert_share: Annotated[float, Field(ge=0, le=1)] = 0.01
     unknown_variant_alert_share: Annotated[float, Field(ge=0, le=1)] = 0.01
+    unattributed_warn_share: Annotated[float, Field(ge=0, le=1)] = 0.001
+    """Unattributed check: share of an experiment's assignment rows with a NULL unit id or timestamp that warns."""
+    unattributed_alert_share: Annotated[float, Field(ge=0, le=1)] = 0.01
+    """Unattributed check: share that alerts (critical at critical_factor times it)."""
     freshness_gap_hours: Annotated[float, Field(gt=0)] = 6.0
     freshness_baseline_days: Annotated[int, Field(ge=1, le=60)] = 7
     srm_critical_deviation: Annotated[float, Field(gt=0, lt=1)] = 0.1
@@ -216,6 +223,8 @@ class CheckConfig(_Model):
     def _order(self) -> CheckConfig:
         if self.leakage_warn_share > self.leakage_alert_share:
             raise ValueError("leakage_warn_share must not exceed leakage_alert_share")
+        if self.unattributed_warn_share > self.unattributed_alert_share:
+            raise ValueError("unattributed_warn_share must not exceed unattributed_alert_share")
         return self
 
 
@@ -404,7 +413,8 @@ def _format_error(where: str, exc: ValidationError) -> str:
 def _resolve_warehouse(wh: WarehouseConfig, base: Path) -> WarehouseConfig:
     """Relative DuckDB/SQLite URLs and Spark Parquet paths, relative to the config file."""
     if wh.spark is None:
-        return wh.model_copy(update={"url": _resolve_file_url(wh.url or "", base)})
+        readable = [str((base / d).resolve()) for d in wh.readable_directories] if wh.readable_directories else None
+        return wh.model_copy(update={"url": _resolve_file_url(wh.url or "", base), "readable_directories": readable})
     paths = {k: v if re.match(r"^[A-Za-z][A-Za-z0-9+.-]*:", v) or Path(v).is_absolute() else str((base / v).resolve())
              for k, v in wh.spark.parquet.items()}
     return wh.model_copy(update={"spark": wh.spark.model_copy(update={"parquet": paths})})
@@ -423,7 +433,31 @@ def _resolve_file_url(url: str, base: Path) -> str:
     return f"{m.group(1)}{m.group(2) or ''}:///{absolute}{sep}{query}"
 
 
+def _user_sql(cfg: Config) -> list[tuple[str, str]]:
+    """Every user-supplied ``sql:`` with its key."""
+    out = [("registry.sql", cfg.registry.sql), ("assignments.sql", cfg.assignments.sql)]
+    out += [(f"stages[{i}].sql", s.sql) for i, s in enumerate(cfg.stages)]
+    for i, m in enumerate(cfg.metrics):
+        out.append((f"metrics[{i}].sql", m.sql))
+        if m.denominator is not None:
+            out.append((f"metrics[{i}].denominator.sql", m.denominator.sql))
+    return [(key, sql) for key, sql in out if sql is not None]
+
+
+def _check_read_only(cfg: Config, where: str) -> None:
+    """Each ``sql:`` must be one read-only SELECT (:mod:`monitor.sqlguard`), in the warehouse's dialect."""
+    from monitor.sqlguard import check_select, sqlglot_dialect
+
+    backend = "spark" if cfg.warehouse.spark is not None else (cfg.warehouse.url or "").split(":", 1)[0]
+    dialect = sqlglot_dialect(backend)
+    for key, sql in _user_sql(cfg):
+        problem = check_select(sql, dialect)
+        if problem is not None:
+            raise ConfigError(f"{where}: {key}: {problem}")
+
+
 def _check_semantics(cfg: Config, where: str) -> None:
+    _check_read_only(cfg, where)
     for i, exp in enumerate(cfg.registry.inline or []):
         key = f"registry.inline[{i}]"
         for j, ph in enumerate(exp.phases):
@@ -489,6 +523,26 @@ def _check_urls(cfg: Config, where: str) -> None:
                               "or put it in an environment variable as ${NAME}, which is encoded for you") from None
 
 
+def _refuse_repeated_keys(node: yaml.Node | None, where: str, path: str = "") -> None:
+    """A key given twice in one mapping is an error: YAML loaders keep the last one silently,
+    so a second ``metrics:`` would replace every metric of the first."""
+    if isinstance(node, yaml.MappingNode):
+        seen: set[str] = set()
+        for key_node, value_node in node.value:
+            key = str(key_node.value)
+            if key == "<<":  # a merge key may repeat
+                continue
+            full = f"{path}.{key}" if path else key
+            if key in seen:
+                raise ConfigError(f"{where}: line {key_node.start_mark.line + 1}: key {full!r} is given twice "
+                                  "(the second would silently replace the first)")
+            seen.add(key)
+            _refuse_repeated_keys(value_node, where, full)
+    elif isinstance(node, yaml.SequenceNode):
+        for i, item in enumerate(node.value):
+            _refuse_repeated_keys(item, where, f"{path}[{i}]")
+
+
 def load_config(path: str | os.PathLike[str]) -> Config:
     """Read, interpolate and validate a YAML configuration file.
 
@@ -506,6 +560,7 @@ def load_config(path: str | os.PathLike[str]) -> Config:
     except OSError as exc:
         raise ConfigError(f"{where}: cannot be read ({exc.strerror})") from None
     try:
+        _refuse_repeated_keys(yaml.compose(text, Loader=yaml.SafeLoader), where)
         data = yaml.safe_load(text)
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None)

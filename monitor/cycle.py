@@ -37,9 +37,10 @@ from monitor.registry import Experiment, RegistryProblem, experiments_from_frame
 from monitor.spillover import pull_spillover, spillover_findings
 from monitor.state import StateStore
 from monitor.templates import Quoter, registry_context, render
+from monitor.unattributed import pull_unattributed, unattributed_findings
 from monitor.warehouse import Tracer, Warehouse, open_warehouse
 
-__all__ = ["CycleResult", "load_registry", "metric_findings", "run_cycle"]
+__all__ = ["METRIC_CHECKS", "CycleResult", "error_findings", "load_registry", "metric_findings", "run_cycle"]
 
 log = logging.getLogger("monitor")
 
@@ -59,6 +60,8 @@ class CycleResult:
     metric_snapshots: list[MetricSnapshot] = field(default_factory=list)
     check_seconds: dict[str, float] = field(default_factory=dict)
     """Wall time per check (``allocation`` and each metric check, its own queries included)."""
+    failed_checks: dict[str, str] = field(default_factory=dict)
+    """Checks whose queries failed this run (name -> one-line error); the others were recorded."""
 
 
 def load_registry(cfg: Config, wh: Warehouse | None) -> tuple[list[Experiment], list[RegistryProblem]]:
@@ -73,32 +76,62 @@ def load_registry(cfg: Config, wh: Warehouse | None) -> tuple[list[Experiment], 
 def metric_findings(
     cfg: Config, wh: Warehouse, live: list[Experiment], as_of: datetime,
     *, on_step: Callable[[str], None] | None = None, timings: dict[str, float] | None = None,
+    failures: dict[str, str] | None = None,
 ) -> tuple[list[Finding], list[MetricSnapshot]]:
     """Every check that reads metric events: read-only queries, then findings.
 
     A cycle calls it once; a replay (:mod:`monitor.replay`) calls it at its metric
     steps, so a metric-level check added here is replayed too.
+
+    With ``failures`` (a dict), a check whose query fails does not stop the others:
+    its one-line error is stored under the check's name and it contributes no
+    findings (see :func:`error_findings`); without it the first failure is raised.
     """
     timings = {} if timings is None else timings
-    t = time.perf_counter()
-    # guardrails: one read-only query per metric
-    pulls = pull_metrics(cfg, wh, live, as_of, on_query=(lambda n: on_step(f"metric[{n}]")) if on_step else None)
-    metric_result = guardrail_findings(live, pulls, as_of, cfg.checks)
-    found = list(metric_result.findings)
-    timings["guardrail"], t = time.perf_counter() - t, time.perf_counter()
+    found: list[Finding] = []
+    snapshots: list[MetricSnapshot] = []
+
+    def guarded(check: str, step: Callable[[], list[Finding]]) -> None:
+        t = time.perf_counter()
+        try:
+            found.extend(step())
+        except WarehouseError as exc:
+            if failures is None:
+                raise
+            failures[check] = str(exc)
+            log.warning("check %s could not run this cycle: %s", check, exc)
+        timings[check] = time.perf_counter() - t
+
+    def guardrail() -> list[Finding]:  # one read-only query per metric
+        pulls = pull_metrics(cfg, wh, live, as_of, on_query=(lambda n: on_step(f"metric[{n}]")) if on_step else None)
+        result = guardrail_findings(live, pulls, as_of, cfg.checks)
+        snapshots.extend(result.snapshots)
+        return list(result.findings)
+
+    guarded("guardrail", guardrail)
     # novelty: one read-only per-age query per primary/guardrail metric
-    ages = pull_novelty(cfg, wh, live, as_of, on_query=on_step)
-    found += novelty_findings(live, ages, as_of, cfg.checks)
-    timings["novelty"], t = time.perf_counter() - t, time.perf_counter()
+    guarded("novelty", lambda: novelty_findings(live, pull_novelty(cfg, wh, live, as_of, on_query=on_step),
+                                                as_of, cfg.checks))
     # interference: spillover (one windowed query per metric, ramped experiments only) and
     # collision (one cross-tab of shared units for all pairs, one query per guardrail)
-    spill = pull_spillover(cfg, wh, live, as_of, on_query=(lambda n: on_step(f"spillover[{n}]")) if on_step else None)
-    found += spillover_findings(live, spill, as_of, cfg.checks)
-    timings["spillover"], t = time.perf_counter() - t, time.perf_counter()
-    coll = pull_collisions(cfg, wh, live, as_of, on_query=(lambda n: on_step(f"collision[{n}]")) if on_step else None)
-    found += collision_findings(live, coll, cfg.checks)
-    timings["collision"] = time.perf_counter() - t
-    return found, list(metric_result.snapshots)
+    guarded("spillover", lambda: spillover_findings(live, pull_spillover(
+        cfg, wh, live, as_of, on_query=(lambda n: on_step(f"spillover[{n}]")) if on_step else None), as_of, cfg.checks))
+    guarded("collision", lambda: collision_findings(live, pull_collisions(
+        cfg, wh, live, as_of, on_query=(lambda n: on_step(f"collision[{n}]")) if on_step else None), cfg.checks))
+    return found, snapshots
+
+
+#: The checks :func:`metric_findings` runs, in order (a failed one is reported by :func:`error_findings`).
+METRIC_CHECKS = ("guardrail", "novelty", "spillover", "collision")
+
+
+def error_findings(live: list[Experiment], failures: dict[str, str]) -> list[Finding]:
+    """One ``warn`` finding per live experiment and failed check (scope ``error``): the check
+    could not be evaluated this run. Its earlier alerts are left as they were (the cycle keeps
+    them out of the ledger plan), so a failed query neither hides nor resolves anything."""
+    return [Finding(e.id, check, "error", "warn",
+                    f"{check} could not be evaluated this run ({message}); its open alerts are kept as they were",
+                    {"error": message}) for check, message in failures.items() for e in live]
 
 
 def _now() -> datetime:
@@ -158,29 +191,35 @@ def run_cycle(
             live = [e for e in exps if e.live_at(as_of, cfg.registry.live_status)]
             sources = pull_sources(cfg, wh, state, live, as_of, full_refresh=full_refresh,
                                    on_query=(lambda n: on_step(f"assignments[{n}]")) if on_step else None)
+            # rows the assignment query leaves out (NULL unit, timestamp or experiment) are counted, not lost
+            unattributed = pull_unattributed(cfg, wh, live, as_of)
             if on_step:
                 on_step("checks")
             counts = {s.name: s.counts for s in sources}
             timings: dict[str, float] = {}
             t_check = time.perf_counter()
             found = design_findings(problems) + allocation_findings(live, counts, cfg.sources[0].name, as_of, cfg.checks)
+            found += unattributed_findings(live, unattributed, cfg.checks)
             # every SRM alert carries its diagnosis (when, which slice, which stage), from the counts already pulled
             found = attach_diagnoses(found, counts, live, cfg, as_of=as_of)
             timings["allocation"] = time.perf_counter() - t_check
-            # guardrails: one read-only query per metric, before anything is written
-            metric_found, snapshots = metric_findings(cfg, wh, live, as_of, on_step=on_step, timings=timings)
-            found += metric_found
+            # guardrails: one read-only query per metric, before anything is written; a check whose
+            # query fails leaves an error finding and the other checks' results stand
+            failures: dict[str, str] = {}
+            metric_found, snapshots = metric_findings(cfg, wh, live, as_of, on_step=on_step, timings=timings,
+                                                      failures=failures)
+            found += metric_found + error_findings(live, failures)
             result = CycleResult(run_id, as_of, live, found, [], sources, problems,
                                  query_seconds={s.name: s.seconds for s in wh.stats},
-                                 metric_snapshots=snapshots, check_seconds=timings)
+                                 metric_snapshots=snapshots, check_seconds=timings, failed_checks=dict(failures))
             last = state.last_run_as_of() if not dry_run else None
             live_ids = [e.id for e in live] + [p.experiment for p in problems]
             clear_for = timedelta(hours=cfg.checks.episode_clear_hours)
             backtest = any(not s.persist for s in sources) or (last is not None and as_of < last)
             if dry_run:
                 result.note = "dry run: nothing was recorded"
-                result.events = ledger.plan(state.open_alerts(), found, live_ids,
-                                            as_of=as_of, clear_for=clear_for)
+                result.events = ledger.plan([a for a in state.open_alerts() if a["check_name"] not in failures], found,
+                                            live_ids, as_of=as_of, clear_for=clear_for)
                 return result
             if backtest:
                 result.note = (f"--as-of is earlier than the latest recorded run ({last:%Y-%m-%d %H:%M} UTC): "
@@ -189,20 +228,21 @@ def run_cycle(
             with state.transaction() as conn:
                 for s in sources:
                     StateStore.replace_counts(conn, s.name, s.since, as_of, s.experiments, s.fresh)
-                events = ledger.plan(state.open_alerts(conn), found, live_ids,
-                                     as_of=as_of, clear_for=clear_for)
+                kept = [a for a in state.open_alerts(conn) if a["check_name"] not in failures]  # failed: left as they were
+                events = ledger.plan(kept, found, live_ids, as_of=as_of, clear_for=clear_for)
                 result.events = ledger.apply(conn, run_id, as_of, found, events)
                 if notifying:
                     outbox.enqueue(conn, run_id, as_of, result.events, cfg.notify, live)
                 StateStore.record_metric_snapshots(conn, run_id, as_of, result.metric_snapshots)
                 StateStore.record_query_costs(conn, run_id, wh.stats)
                 StateStore.record_run(conn, run_id, started, as_of, "ok", {
-                    "experiments": len(live), "findings": len(found),
+                    "experiments": len(live), "findings": len(found), "failed_checks": dict(failures),
                     "queries": [{"name": q.name, "seconds": round(q.seconds, 4), "rows": q.rows} for q in wh.stats],
                 })
             result.recorded = True
-        if notifying:
-            _deliver(cfg, state, healthy=True, cycle=number)
+        if notifying:  # a check that could not run is a monitor-health notice, once, like a failed run
+            _deliver(cfg, state, healthy=not failures, cycle=number,
+                     failure="; ".join(f"check {k} failed: {v}" for k, v in failures.items()) or None)
         return result
     except WarehouseError as exc:
         if notifying:

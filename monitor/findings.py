@@ -22,7 +22,7 @@ __all__ = ["CHECKS", "Finding", "SEVERITY_NAMES", "Status", "clean_json"]
 
 Status = Literal["ok", "warn", "alert"]
 
-CHECKS = ("srm", "leakage", "unknown_variant", "freshness", "design", "guardrail", "metric", "novelty", "spillover", "collision")
+CHECKS = ("srm", "leakage", "unknown_variant", "unattributed", "freshness", "design", "guardrail", "metric", "novelty", "spillover", "collision")
 SEVERITY_NAMES = {0: "ok", 1: "warn", 2: "alert", 3: "critical"}
 
 

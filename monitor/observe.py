@@ -179,7 +179,7 @@ def _run_detail(state_url: str, run_id: str) -> dict[str, Any] | None:
 ALERT_EVENTS = ("opened", "escalated", "resolved")
 
 #: check-timing groups of :func:`monitor.cycle.run_cycle` and the finding check names they produce
-_CHECK_GROUPS = {"allocation": ("srm", "leakage", "unknown_variant", "freshness", "design")}
+_CHECK_GROUPS = {"allocation": ("srm", "leakage", "unknown_variant", "unattributed", "freshness", "design")}
 
 
 def log_cycle(result: Any, seconds: float, state_url: str | None = None, logger: logging.Logger = log) -> None:

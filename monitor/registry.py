@@ -18,7 +18,10 @@ import pandas as pd
 
 from monitor.config import RegistryConfig, utc
 
-__all__ = ["Experiment", "Phase", "RegistryProblem", "experiments_from_frame", "experiments_from_inline"]
+__all__ = ["NO_EXPERIMENT", "Experiment", "Phase", "RegistryProblem", "experiments_from_frame", "experiments_from_inline"]
+
+NO_EXPERIMENT = "(no experiment id)"
+"""The experiment name of findings about rows whose experiment id is NULL."""
 
 _WEIGHT_TOL = 1e-6
 
@@ -157,6 +160,15 @@ def experiments_from_frame(df: pd.DataFrame, cfg: RegistryConfig) -> tuple[list[
         return exps, problems
     df = df.copy()
     df["experiment"] = df["experiment"].map(_opt_str)
+    nameless = df[df["experiment"].isna()]
+    if len(nameless):
+        # rows that describe no experiment: the experiment they were meant for would vanish unnoticed
+        variants = sorted({str(v) for v in nameless["variant"].map(_opt_str) if v is not None})
+        shown = ", ".join(variants[:5]) + (", ..." if len(variants) > 5 else "")
+        problems.append(RegistryProblem(
+            NO_EXPERIMENT, f"{len(nameless)} registry row{'s' if len(nameless) != 1 else ''} "
+            f"{'have' if len(nameless) != 1 else 'has'} a NULL experiment id"
+            f"{f' (variants {shown})' if variants else ''}; the experiment they describe is not monitored"))
     df = df[df["experiment"].notna()]
     for exp_id, rows in df.groupby("experiment", sort=True):
         exp_id = str(exp_id)

@@ -1,9 +1,14 @@
 """Read-only access to the warehouse.
 
-expwatch never writes to the warehouse. Connections are opened read-only where
-the engine allows it: DuckDB files with ``read_only=True``, PostgreSQL sessions
-with ``default_transaction_read_only = on`` (and ``enable_nestloop = off``, see
-``_install_session_settings``). Sessions run in UTC so hour
+expwatch never writes to the warehouse. Every user ``sql:`` has been checked to be
+one read-only SELECT when the config was loaded (:mod:`monitor.sqlguard`); the
+sessions add a second layer. DuckDB files are opened with ``read_only=True``, with
+external file access off (``enable_external_access = false``, except
+``readable_directories``) and the configuration locked. PostgreSQL sessions have
+``default_transaction_read_only = on``, every transaction starts ``BEGIN READ
+ONLY``, and every statement is sent through the extended (prepared) protocol, so
+the server refuses a string holding several commands (and ``enable_nestloop =
+off``, see ``_install_session_settings``). Sessions run in UTC so hour
 boundaries are the same on every engine.
 
 Every query goes through :meth:`Warehouse.query`, which names the template in
@@ -114,14 +119,19 @@ class Warehouse:
         temporary directory, never beside the warehouse file.
     work_mem : optional
         PostgreSQL session setting ``work_mem`` (memory per sort or hash before it spills).
+    readable_directories : optional
+        DuckDB only: folders whose files the queries may read (``read_parquet`` and the like);
+        every other file outside the warehouse and the spill folder is refused.
     """
 
     _pinned: sa.Connection | None = None  # the run's one connection (pin); never set on Spark
 
     def __init__(self, url: str, *, tracer: Tracer | None = None, timeout_seconds: float = 600.0,
                  memory_limit: str | None = None, threads: int | None = None,
-                 spill_directory: str | None = None, work_mem: str | None = None) -> None:
+                 spill_directory: str | None = None, work_mem: str | None = None,
+                 readable_directories: list[str] | None = None) -> None:
         self.url = url
+        self._readable = list(readable_directories or [])
         self._work_mem = work_mem
         self.tracer = tracer
         self.stats: list[QueryStats] = []
@@ -149,6 +159,8 @@ class Warehouse:
         except (ArgumentError, ImportError) as exc:
             raise ConfigError(f"warehouse.url: {safe_url(url)}: {_first_line(exc)}") from exc
         self._install_session_settings(backend, timeout_seconds)
+        if backend == "postgresql" and parsed.get_driver_name() == "psycopg":
+            self._one_statement_per_call()
 
     @property
     def dialect(self) -> sa.Dialect:
@@ -176,6 +188,10 @@ class Warehouse:
                     if self._work_mem is not None:  # checked by the config: digits and a unit
                         cur.execute("SET work_mem = '" + self._work_mem.strip().replace("'", "''") + "'")
                     dbapi_conn.commit()
+                    # every later transaction of this session starts with BEGIN READ ONLY (psycopg 3),
+                    # whatever the session default says by then
+                    if hasattr(dbapi_conn, "read_only"):
+                        dbapi_conn.read_only = True
                 elif backend == "duckdb":
                     try:
                         cur.execute("SET TimeZone = 'UTC'")
@@ -189,6 +205,22 @@ class Warehouse:
             finally:
                 cur.close()
 
+    def _one_statement_per_call(self) -> None:
+        """PostgreSQL (psycopg 3): send every statement through the extended query protocol
+        (prepared), which the server refuses to run with more than one command in it. Without
+        bind parameters psycopg would use the simple protocol, which runs a whole
+        ``...; COMMIT; INSERT ...`` script."""
+
+        @sa.event.listens_for(self.engine, "do_execute")
+        def _execute(cursor: Any, statement: str, parameters: Any, _context: Any) -> bool:
+            cursor.execute(statement, parameters, prepare=True)
+            return True
+
+        @sa.event.listens_for(self.engine, "do_execute_no_params")
+        def _execute_no_params(cursor: Any, statement: str, _context: Any) -> bool:
+            cursor.execute(statement, prepare=True)
+            return True
+
     def _duckdb_session(self, cur: Any) -> None:
         """Memory limit, threads and spill folder of a DuckDB session (values are checked by the config)."""
         settings = dict(self._duckdb_settings)
@@ -201,6 +233,15 @@ class Warehouse:
                 continue
             literal = str(int(value)) if key == "threads" else "'" + str(value).replace("'", "''") + "'"
             cur.execute(f"SET {key} = {literal}")
+        # A monitor reads the warehouse file and spills to temp_directory, nothing else: no COPY ... TO,
+        # no ATTACH, no reading other files except under readable_directories; then the settings are
+        # locked so no statement can turn them back on (measured: reads, spilling and the session's
+        # temp tables keep working).
+        if self._readable:
+            dirs = ", ".join("'" + str(d).rstrip("/").replace("'", "''") + "/'" for d in self._readable)
+            cur.execute(f"SET allowed_directories = [{dirs}]")
+        cur.execute("SET enable_external_access = false")
+        cur.execute("SET lock_configuration = true")
 
     @property
     def pinned(self) -> bool:
@@ -278,6 +319,25 @@ class Warehouse:
         stmt = self._statement(name, sql, params, expanding)
         t0 = time.perf_counter()
         try:
+            frame, scanned, read_bytes = self._run_query(name, stmt, params)
+        except BaseException:
+            self._recover()
+            raise
+        seconds = time.perf_counter() - t0
+        _record(self.stats, QueryStats(name, seconds, len(frame), scanned, read_bytes))
+        return frame
+
+    def _recover(self) -> None:
+        """After a failed query on the pinned session, end its aborted transaction so the
+        run's later queries (other checks) can still use it; committed temp tables stay."""
+        if self._pinned is not None:
+            try:
+                self._pinned.rollback()
+            except Exception:  # the connection is broken: the next query reports it
+                log.debug("warehouse: rollback after a failed query failed", exc_info=True)
+
+    def _run_query(self, name: str, stmt: sa.TextClause, params: Mapping[str, Any]) -> tuple[pd.DataFrame, Any, Any]:
+        try:
             with nullcontext(self._pinned) if self._pinned is not None else self.engine.connect() as conn:
                 result = conn.execute(stmt, dict(params))
                 cols = list(result.keys())
@@ -291,9 +351,7 @@ class Warehouse:
             raise WarehouseError(f"query {name} failed on {self.dialect.name}: {_first_line(exc)}{self._memory_hint(exc)}") from exc
         except Exception as exc:  # driver errors that are not DBAPI errors (e.g. duckdb.IOException)
             raise WarehouseError(f"warehouse {safe_url(self.url)}: query {name}: {_first_line(exc)}") from exc
-        seconds = time.perf_counter() - t0
-        _record(self.stats, QueryStats(name, seconds, len(frame), scanned, read_bytes))
-        return frame
+        return frame, scanned, read_bytes
 
     def _fetch_frame(self, result: sa.CursorResult[Any], cols: list[str]) -> pd.DataFrame:
         """Rows as a DataFrame, without per-row Python work where the driver can
@@ -590,4 +648,5 @@ def open_warehouse(settings: Any, *, tracer: Tracer | None = None) -> Warehouse:
     return Warehouse(settings.url, tracer=tracer, timeout_seconds=settings.query_timeout_seconds,
                      memory_limit=getattr(settings, "memory_limit", None), threads=getattr(settings, "threads", None),
                      spill_directory=getattr(settings, "spill_directory", None),
-                     work_mem=getattr(settings, "work_mem", None))
+                     work_mem=getattr(settings, "work_mem", None),
+                     readable_directories=getattr(settings, "readable_directories", None))

@@ -59,7 +59,7 @@ def test_json_output_matches_the_readme(demo, tmp_path, capsys):
     finding_keys = {k.split(".", 1)[1] for k in documented if k.startswith("findings[].")}
     assert all(set(f) == finding_keys for f in doc["findings"])
     assert {f["status"] for f in doc["findings"]} <= {"ok", "warn", "alert"}
-    assert {f["check"] for f in doc["findings"]} <= {"srm", "leakage", "unknown_variant", "freshness", "design",
+    assert {f["check"] for f in doc["findings"]} <= {"srm", "leakage", "unknown_variant", "unattributed", "freshness", "design",
                                                     "guardrail", "metric", "novelty", "spillover", "collision"}
     assert {"guardrail", "metric"} <= {f["check"] for f in doc["findings"]}
     assert doc["as_of"] == "2026-11-30T09:00:00Z"

@@ -113,10 +113,10 @@ def test_incremental_template_pull_equals_full_refresh(setup, tmp_path):
     con.close()
     inc = run_cycle(setup, as_of=START + timedelta(hours=240))
     assert two.recorded and inc.sources[0].since == START + timedelta(hours=170 - 48)
-    assert queries(inc) == ["assignments[assigned]"]
+    assert queries(inc) == ["assignments[assigned]", "unattributed[assigned]"]
     full = run_cycle(setup.model_copy(update={"state": setup.state.model_copy(update={"url": f"sqlite:///{tmp_path / 'other.sqlite'}"})}),
                      as_of=START + timedelta(hours=240))
-    assert queries(full) == ["first-assignments[assigned]", "assignments[assigned]"]
+    assert queries(full) == ["first-assignments[assigned]", "assignments[assigned]", "unattributed[assigned]"]
     a = {(f.key): json.dumps(f.to_json()["statistics"], sort_keys=True) for f in inc.findings}
     b = {(f.key): json.dumps(f.to_json()["statistics"], sort_keys=True) for f in full.findings}
     assert a == b and any(f.experiment == "tilted" and f.check == "srm" for f in inc.findings)

@@ -268,8 +268,8 @@ def test_run_json_logs_carry_run_id_query_durations_and_rows(cfg, capsys, tmp_pa
     checks = {x["check"]: x for x in logs if x.get("event") == "check"}
     assert set(checks) == {"allocation", "guardrail", "novelty", "spillover", "collision"}
     assert all(c["seconds"] >= 0 and c["run_id"] == queries[0]["run_id"] for c in checks.values())
-    assert checks["allocation"]["findings"] == sum(f["check"] in ("srm", "leakage", "unknown_variant", "freshness",
-                                                                 "design") for f in doc["findings"])
+    assert checks["allocation"]["findings"] == sum(f["check"] in ("srm", "leakage", "unknown_variant", "unattributed",
+                                                                 "freshness", "design") for f in doc["findings"])
     cycle = next(x for x in logs if x.get("event") == "cycle")
     assert cycle["run_id"] == queries[0]["run_id"] and cycle["recorded"] is True
     assert doc["run_id"] == cycle["run_id"]
@@ -277,9 +277,9 @@ def test_run_json_logs_carry_run_id_query_durations_and_rows(cfg, capsys, tmp_pa
 
 
 def test_status_shows_recent_runs_and_open_alerts(cfg, capsys):
-    assert main(["status", "--config", str(cfg.path)]) == 0
-    assert "no run recorded yet" in capsys.readouterr().out
-    assert not Path(cfg.state.url.removeprefix("sqlite:///")).exists()  # status does not create the store
+    assert main(["status", "--config", str(cfg.path)]) == 2  # a store that does not exist is refused ...
+    assert "no state store at" in capsys.readouterr().err
+    assert not Path(cfg.state.url.removeprefix("sqlite:///")).exists()  # ... and not created
     for h in (100, 120):
         assert main(["run", "--config", str(cfg.path), "--as-of", (START + timedelta(hours=h)).isoformat(), "--format", "json"]) == 0
     capsys.readouterr()
