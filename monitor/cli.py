@@ -799,7 +799,14 @@ def _dispatch(args: argparse.Namespace, console: Console, err: Console) -> int:
         if args.command == "replay":
             return _replay(cfg, args, err)
         if args.command == "status":
-            _require_state(cfg, "status")
+            try:
+                _require_state(cfg, "status")
+            except ConfigError as exc:
+                if args.max_age is None:
+                    raise
+                # a health check before the first run: unhealthy (exit 1), and the line says why
+                sys.stderr.write(f"expwatch: unhealthy: no run has succeeded yet ({exc})\n")
+                return 1
             return _status(cfg, args)
         if args.command in ("digest", "alerts", "mute", "unmute"):
             args.cfg = cfg

@@ -212,9 +212,9 @@ def test_sigkill_at_random_points_loses_and_doubles_nothing(wdir):
 
 
 def _real_run(config: Path, as_of: datetime) -> subprocess.Popen:
-    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    # -P and no PYTHONPATH: the child imports the installed package, as the tests do
     return subprocess.Popen([sys.executable, "-P", "-m", "monitor", "run", "--config", str(config), "--as-of", as_of.isoformat(),
-                             "--format", "json"], stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=env, text=True)
+                             "--format", "json"], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
 
 
 @pytest.mark.slow

@@ -204,6 +204,8 @@ state: {{url: "sqlite:///{tmp_path / 'state.sqlite'}"}}
 {extra}"""
     path = tmp_path / "expwatch.yaml"
     path.write_text(text)
+    # an existing, empty store: 'digest' refuses one that does not exist (a mistyped state.url)
+    StateStore(f"sqlite:///{tmp_path / 'state.sqlite'}").dispose()
     return path
 
 

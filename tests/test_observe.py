@@ -25,8 +25,10 @@ wdir, cfg, _reset_logging = test_serve.wdir, test_serve.cfg, test_serve._reset_l
 
 def test_status_max_age_is_a_health_check(cfg, capsys):
     args = ["status", "--config", str(cfg.path), "--max-age", "3h"]
-    assert main(args) == 1  # no run yet: unhealthy
-    assert capsys.readouterr().err == "expwatch: unhealthy: no run has succeeded yet\n"
+    assert main(args) == 1  # no run yet (no state store either): unhealthy, not a usage error
+    err = capsys.readouterr().err
+    assert err.startswith("expwatch: unhealthy: no run has succeeded yet (status: no state store at ")
+    assert err.count("\n") == 1
     assert main(["run", "--config", str(cfg.path), "--as-of", (START + timedelta(hours=100)).isoformat(),
                  "--format", "json"]) == 0
     capsys.readouterr()
