@@ -361,7 +361,10 @@ def _why_undefined(m: MetricConfig, i: int, p: _Pairs, est: fx.EffectEstimate) -
         return "the metric is 0 for every unit in both variants: check that its events arrive"
     if not bool(est.defined[i]):
         return "the metric has no variation within either variant, so no interval can be formed"
-    return f"the {e.control} mean is 0, so the relative effect is undefined"
+    zero = [name for name, arm in ((e.control, p.ctrl), (v, p.trt)) if arm["sum_y"][i] == 0]
+    if zero:
+        return f"the metric is 0 for every unit of {zero[0]} so far, so the relative effect is undefined"
+    return "the relative effect has no usable interval yet"
 
 
 def guardrail_findings(experiments: Sequence[Experiment], pulls: Sequence[MetricPull], as_of: datetime,
@@ -482,9 +485,18 @@ def _finding(s: dict[str, Any], adj: tuple[bool, float] | None, checks: CheckCon
     status = s["status"]
     if status == "undefined":
         why = _why_undefined(m, i, p, est)
+        # A data fault (no events at all, no variation, a zero denominator) with enough units is
+        # worth a look. Otherwise (a rare event with no occurrence yet in one arm) a warn needs
+        # valid evidence of harm, from the difference's confidence sequence, as when the control
+        # mean is not yet bounded away from 0: "cannot be judged" alone is not evidence.
+        lo, up = row["cs_lower"], row["cs_upper"]
+        harm = lo is not None and ((lo > 0) if (m.bad_direction or "increase") == "increase" else (up < 0))
         measurable = min(p.ctrl["n"][i], p.trt["n"][i]) >= checks.srm_min_units
-        st = "warn" if (check == "guardrail" and measurable) else "ok"
-        return Finding(e.id, check, s["scope"], st, f"{label}: {v} vs {e.control} cannot be judged: {why}", stats)
+        fault = measurable and not why.startswith(("the metric is 0 for every unit of ", "the relative effect has"))
+        st = "warn" if (check == "guardrail" and (harm or fault)) else "ok"
+        shown = f"; harm established on the difference ({lo:+.4g} to {up:+.4g})" if harm and not fault else ""
+        return Finding(e.id, check, s["scope"], st,
+                       f"{label}: {v} vs {e.control} cannot be judged on the relative scale: {why}{shown}", stats)
     level = f"{100 * (1 - alpha):g}%"
     if row["rel_cs_lower"] is not None:
         cs = f"always-valid {level} CS {_pct(row['rel_cs_lower'])} to {_pct(row['rel_cs_upper'])}"

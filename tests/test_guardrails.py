@@ -320,3 +320,21 @@ def test_readme_documents_every_guardrail_statistic():
     part = line.split("for `guardrail` and `metric`:", 1)[1].split("; for `", 1)[0]  # up to the next check
     documented = set(re.findall(r"`([a-z_]+)`", part))
     assert set(f.statistics) == documented
+
+
+def test_a_rare_event_absent_from_one_arm_is_not_a_warning_without_evidence_of_harm():
+    """Issue 'Quiet when healthy': early in an experiment a rare event has often not occurred yet in
+    one arm, so the relative effect is undefined. That alone is no evidence: on the demo's hourly
+    replay it opened a one-to-three-day warn on every experiment's rare-event guardrails. The case
+    here is the demo's review-after-return on 2026-11-19 (2 of 681 control units, 0 of 705)."""
+    m = _metric(name="loan_cancelled", kind="proportion", aggregate="any")
+    rows = [{"experiment": "exp", "variant": "control", "hour": START, "n": 681.0, "sum_y": 2.0, "sum_y2": 2.0},
+            {"experiment": "exp", "variant": "treatment", "hour": START, "n": 705.0, "sum_y": 0.0, "sum_y2": 0.0}]
+    (f,) = _one(m, rows).findings
+    assert f.status == "ok" and "cannot be judged on the relative scale" in f.summary
+    assert "0 for every unit of treatment" in f.summary
+    _no_nan(f)
+    # the other way round, with many events: harm is established by the difference's sequence
+    rows = [dict(rows[0], sum_y=0.0, sum_y2=0.0, n=5000.0), dict(rows[1], sum_y=80.0, sum_y2=80.0, n=5000.0)]
+    (g,) = _one(m, rows).findings
+    assert g.status == "warn" and "harm established on the difference" in g.summary
