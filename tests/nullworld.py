@@ -58,7 +58,8 @@ EXPERIMENTS: dict[str, tuple[list[tuple[float, dict[str, float]]], float]] = {
 }
 
 
-#: Problem -> what is planted. Effects start at each unit's first exposure (age 0 is that day).
+#: Problem -> what is planted (at strength 1; ``build(..., strength=k)`` multiplies each size,
+#: the share shift, the leaked and copied shares and the effects, by k). Effects start at each unit's first exposure (age 0 is that day).
 PROBLEMS: dict[str, str] = {
     "srm": "plain-half assigns 49% of units to treatment, not the registry's 50% (a 1-point share shift)",
     "leakage": "3% of plain-half's units are exposed again, hours later, to the other variant",
@@ -115,7 +116,7 @@ def _sessions(rng: np.random.Generator, start: datetime) -> pd.DataFrame:
 
 
 def _assignments(rng: np.random.Generator, s: pd.DataFrame, start: datetime, plant: frozenset[str],
-                 prng: np.random.Generator) -> tuple[pd.DataFrame, pd.DataFrame, dict[str, pd.DataFrame]]:
+                 prng: np.random.Generator, k: float) -> tuple[pd.DataFrame, pd.DataFrame, dict[str, pd.DataFrame]]:
     rows, reg, firsts = [], [], {}
     stop = (STOP_AT - start).total_seconds()
     for eid, (phases, trigger) in EXPERIMENTS.items():
@@ -129,17 +130,17 @@ def _assignments(rng: np.random.Generator, s: pd.DataFrame, start: datetime, pla
         for j, (_, w) in enumerate(phases):
             sel = ph == j
             if "srm" in plant and eid == "plain-half":
-                w = {"control": 0.51, "treatment": 0.49}
+                w = {"control": 0.5 + 0.01 * k, "treatment": 0.5 - 0.01 * k}
             var[sel] = rng.choice(variants, size=int(sel.sum()), p=[w[v] for v in variants])
         if "correlated" in plant and eid == "late-half":
             other = firsts["plain-half"]["variant"].reindex(first.index).to_numpy()
-            copy = pd.notna(other) & (prng.random(first.size) < 0.10)
+            copy = pd.notna(other) & (prng.random(first.size) < 0.10 * k)
             var[copy] = other[copy]
         of_user = pd.Series(var, index=first.index)
         firsts[eid] = pd.DataFrame({"t0": first, "variant": of_user})
         hit = hit.assign(variant=hit["user"].map(of_user))
         if "leakage" in plant and eid == "plain-half":
-            hit = pd.concat([hit, _leaks(prng, hit, first, of_user)], ignore_index=True)
+            hit = pd.concat([hit, _leaks(prng, hit, first, of_user, 0.03 * k)], ignore_index=True)
         if "stop" in plant and eid == "plain-half":
             hit = hit[(hit["t"] < stop) | (hit["t"] >= stop + STOP_HOURS * 3600)]
         rows.append(pd.DataFrame({"unit_id": "u" + hit["user"].astype(str), "experiment_id": eid,
@@ -158,9 +159,10 @@ def _assignments(rng: np.random.Generator, s: pd.DataFrame, start: datetime, pla
     return a, registry, firsts
 
 
-def _leaks(prng: np.random.Generator, hit: pd.DataFrame, first: pd.Series, of_user: pd.Series) -> pd.DataFrame:
-    """One more exposure row, to the other variant, for 3% of the units, 6 hours (mean) after the first."""
-    users = first.index.to_numpy()[prng.random(first.size) < 0.03]
+def _leaks(prng: np.random.Generator, hit: pd.DataFrame, first: pd.Series, of_user: pd.Series,
+           share: float) -> pd.DataFrame:
+    """One more exposure row, to the other variant, for ``share`` of the units, 6 hours (mean) after the first."""
+    users = first.index.to_numpy()[prng.random(first.size) < share]
     t = first[users].to_numpy() + prng.exponential(6 * 3600, size=users.size)
     keep = t < DAYS * 86400
     users, t = users[keep], t[keep]
@@ -173,7 +175,8 @@ def _ts(start: datetime, seconds: pd.Series) -> pd.Series:
     return pd.Timestamp(start.replace(tzinfo=None)) + pd.to_timedelta(np.asarray(seconds), unit="s")
 
 
-def _lifts(s: pd.DataFrame, plant: frozenset[str], firsts: dict[str, pd.DataFrame]) -> tuple[np.ndarray, np.ndarray]:
+def _lifts(s: pd.DataFrame, plant: frozenset[str], firsts: dict[str, pd.DataFrame],
+           k: float) -> tuple[np.ndarray, np.ndarray]:
     """Per session: the planted factor on reading minutes and on render time (1 where nothing is planted)."""
     minutes, render = np.ones(len(s)), np.ones(len(s))
     t = s["t"].to_numpy()
@@ -183,16 +186,16 @@ def _lifts(s: pd.DataFrame, plant: frozenset[str], firsts: dict[str, pd.DataFram
         age = (t - f["t0"].to_numpy()) / 86400  # NaN for units never exposed
         treated = (f["variant"].to_numpy() == "treatment") & (age >= 0)
         if problem == "guardrail":
-            render[treated] *= 1.05
+            render[treated] *= 1 + 0.05 * k
         elif problem == "fading":
-            minutes[treated] *= 1 + 0.30 * 0.5 ** (age[treated] / 2)
+            minutes[treated] *= 1 + 0.30 * k * 0.5 ** (age[treated] / 2)
         elif problem == "growing":
-            minutes[treated] *= 1 + 0.20 * np.clip(age[treated] / 14, 0, 1)
+            minutes[treated] *= 1 + 0.20 * k * np.clip(age[treated] / 14, 0, 1)
         else:  # the treatment share of the phase running at the session's time
             phases = EXPERIMENTS[eid][0]
             j = np.searchsorted([d * 86400 for d, _ in phases], t[treated], side="right") - 1
             share = np.array([w["treatment"] for _, w in phases])[j]
-            minutes[treated] *= 1 + 0.60 * (1 - share)
+            minutes[treated] *= 1 + 0.60 * k * (1 - share)
     return minutes, render
 
 
@@ -238,22 +241,25 @@ def config(db: Path, state: Path) -> dict[str, Any]:
     }
 
 
-def build(directory: Path, seed: int, plant: tuple[str, ...] = ()) -> dict[str, Any]:
+def build(directory: Path, seed: int, plant: tuple[str, ...] = (), strength: float = 1.0) -> dict[str, Any]:
     """Write the world for ``seed`` to ``directory/world.duckdb``; return its monitor config.
 
-    ``plant``: names from :data:`PROBLEMS` to plant (none by default: the null world)."""
+    ``plant``: names from :data:`PROBLEMS` to plant (none by default: the null world), each at
+    ``strength`` times the size :data:`PROBLEMS` states."""
     unknown = sorted(set(plant) - set(PROBLEMS))
     if unknown:
         raise ValueError(f"unknown problem(s) to plant: {', '.join(unknown)} (known: {', '.join(PROBLEMS)})")
+    if not 0 < strength <= 10:
+        raise ValueError(f"strength must be in (0, 10], got {strength:g}")
     rng, prng = np.random.default_rng(seed), np.random.default_rng([seed, 17])
     start = AS_OF - timedelta(days=DAYS)
     s = _sessions(rng, start)
     s = s[_ts(start, s["t"]) < pd.Timestamp(AS_OF.replace(tzinfo=None))]
-    a, registry, firsts = _assignments(rng, s, start, frozenset(plant), prng)
+    a, registry, firsts = _assignments(rng, s, start, frozenset(plant), prng, strength)
     humans = s[~s["bot"]]
     tables = {"experiments": registry, "assignments": a.drop(columns="bot"),
               "assignments_filtered": a[~a["bot"]].drop(columns="bot"),
-              **_events(rng, humans, start, _lifts(humans, frozenset(plant), firsts))}
+              **_events(rng, humans, start, _lifts(humans, frozenset(plant), firsts, strength))}
     db = directory / "world.duckdb"
     con = duckdb.connect(str(db))
     try:

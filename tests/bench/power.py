@@ -1,9 +1,9 @@
 """Power on the realistic world: plant one problem at a time, run the real cycle, count detections.
 
-    python -m tests.bench.power [--seeds N] [--problems srm,leakage,...] [--dir DIR]
+    python -m tests.bench.power [--seeds N] [--problems srm,leakage,...] [--strength K] [--dir DIR]
 
 For every problem of ``tests/nullworld.py`` (:data:`PROBLEMS`) and every seed, the world is built
-with that one problem planted and :func:`monitor.cycle.run_cycle` runs on it (dry run, every
+with that one problem planted (at ``--strength`` times its stated size) and :func:`monitor.cycle.run_cycle` runs on it (dry run, every
 check at its defaults). A problem is *detected* when the check that should see it gives the
 experiment it was planted in a finding at ``warn`` or worse (:func:`detected`); for the stop of
 the exposure log the cycle runs at the end of the 8-hour stop, for every other problem at the
@@ -87,13 +87,13 @@ def null_findings(seeds: range, directory: Path) -> dict[tuple[int, datetime], l
     return out
 
 
-def study(problem: str, seeds: range, directory: Path) -> tuple[int, list[float | None]]:
+def study(problem: str, seeds: range, directory: Path, strength: float = 1.0) -> tuple[int, list[float | None]]:
     """(seeds detected, per detected seed the first grid hour detected, None when only at the decision)."""
     hits, delays = 0, []
     for seed in seeds:
         d = directory / f"{problem}-{seed}"
         d.mkdir(parents=True, exist_ok=True)
-        cfg = parse_config(build(d, seed, plant=(problem,)))
+        cfg = parse_config(build(d, seed, plant=(problem,), strength=strength))
         if not cycle(cfg, problem, judged_at(problem)):
             continue
         hits += 1
@@ -121,24 +121,27 @@ def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--seeds", type=int, default=3)
     ap.add_argument("--problems", default=",".join(PROBLEMS), help="comma-separated, from: " + ", ".join(PROBLEMS))
+    ap.add_argument("--strength", type=float, default=1.0, help="multiply every planted size (share shift, "
+                    "leaked and copied shares, effects) by this, in (0, 10]")
     ap.add_argument("--dir", default=None, help="where the worlds are written (default: a temporary directory)")
     args = ap.parse_args(argv)
     problems = [p for p in args.problems.split(",") if p]
     unknown = [p for p in problems if p not in PROBLEMS]
-    if unknown or args.seeds < 1:
-        print(f"error: --problems: unknown {', '.join(unknown)}" if unknown else "error: --seeds must be >= 1",
-              file=sys.stderr)
+    problem = (f"--problems: unknown {', '.join(unknown)}" if unknown else "--seeds must be >= 1"
+               if args.seeds < 1 else "--strength must be in (0, 10]" if not 0 < args.strength <= 10 else None)
+    if problem:
+        print(f"error: {problem}", file=sys.stderr)
         return 2
     seeds = range(FIRST_SEED, FIRST_SEED + args.seeds)
     with tempfile.TemporaryDirectory() as tmp:
         directory = Path(args.dir or tmp)
         print(f"power on the realistic world: {args.seeds} seeds per problem, one problem planted at a time, "
-              f"every check at its defaults; delay grid in hours after onset")
+              f"strength {args.strength:g}, every check at its defaults; delay grid in hours after onset")
         null = null_findings(seeds, directory)
         print(f"{'problem':13s} {'check':10s} {'experiment':11s} {'detected':>9s} {'null world':>10s}  "
               "delay (detected seeds)")
         for p in problems:
-            hits, delays = study(p, seeds, directory)
+            hits, delays = study(p, seeds, directory, args.strength)
             base = sum(detected(null[seed, judged_at(p)], p) for seed in seeds)
             eid, check, _ = TARGETS[p]
             print(f"{p:13s} {check:10s} {eid:11s} {hits:4d} / {args.seeds:<3d} {base:4d} / {args.seeds:<3d}  "
