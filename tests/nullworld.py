@@ -20,6 +20,11 @@ product traffic and plants nothing:
 
 Treatment changes nothing: every metric event depends on the user and the session only.
 :func:`build` writes the tables and returns the config (a dict for ``parse_config``).
+
+For power studies, ``build(..., plant=(...))`` plants problems from :data:`PROBLEMS` into this
+world (one experiment each, see :data:`TARGETS`). Planting draws from a random stream of its own
+and only rescales or moves what the null world drew, so ``plant=()`` (the default) writes
+exactly the null world of the same seed.
 """
 
 from __future__ import annotations
@@ -51,6 +56,30 @@ EXPERIMENTS: dict[str, tuple[list[tuple[float, dict[str, float]]], float]] = {
     "late-half": ([(27.3, {"control": 0.5, "treatment": 0.5})], 0.9),
     "narrow-trigger": ([(18.8, {"control": 0.5, "treatment": 0.5})], 0.15),
 }
+
+
+#: Problem -> what is planted (at strength 1; ``build(..., strength=k)`` multiplies each size,
+#: the share shift, the leaked and copied shares and the effects, by k). Effects start at each unit's first exposure (age 0 is that day).
+PROBLEMS: dict[str, str] = {
+    "srm": "plain-half assigns 49% of units to treatment, not the registry's 50% (a 1-point share shift)",
+    "leakage": "3% of plain-half's units are exposed again, hours later, to the other variant",
+    "guardrail": "render time per page view +5% for plain-half's treatment units after first exposure",
+    "fading": "reading minutes +30% for plain-half's treatment units at age 0, halving every 2 days",
+    "growing": "reading minutes of plain-half's treatment units rise from +0% at age 0 to +20% at day 14, then stay",
+    "interference": "wide-ramp's treatment units read 60% x (1 - treatment share at the time) more minutes",
+    "correlated": "late-half copies plain-half's variant for 10% of the units the two share",
+    "stop": "plain-half's exposure log has no rows for 8 hours from 2026-10-28 10:00 UTC (STOP_AT)",
+}
+#: Problem -> (experiment, check, scope prefix or None): the finding that detects it.
+TARGETS: dict[str, tuple[str, str, str | None]] = {
+    "srm": ("plain-half", "srm", None), "leakage": ("plain-half", "leakage", None),
+    "guardrail": ("plain-half", "guardrail", "render_ms_per_view"), "fading": ("plain-half", "novelty", "minutes"),
+    "growing": ("plain-half", "novelty", "minutes"), "interference": ("wide-ramp", "spillover", "minutes"),
+    "correlated": ("late-half", "collision", "plain-half"), "stop": ("plain-half", "freshness", None),
+}
+#: Start of the planted 8-hour stop (a busy Wednesday daytime, the day before AS_OF).
+STOP_AT = AS_OF - timedelta(hours=23)
+STOP_HOURS = 8
 
 
 def _hour_weights(start: datetime) -> np.ndarray:
@@ -86,8 +115,10 @@ def _sessions(rng: np.random.Generator, start: datetime) -> pd.DataFrame:
     return df
 
 
-def _assignments(rng: np.random.Generator, s: pd.DataFrame, start: datetime) -> tuple[pd.DataFrame, pd.DataFrame]:
-    rows, reg = [], []
+def _assignments(rng: np.random.Generator, s: pd.DataFrame, start: datetime, plant: frozenset[str],
+                 prng: np.random.Generator, k: float) -> tuple[pd.DataFrame, pd.DataFrame, dict[str, pd.DataFrame]]:
+    rows, reg, firsts = [], [], {}
+    stop = (STOP_AT - start).total_seconds()
     for eid, (phases, trigger) in EXPERIMENTS.items():
         first_day = phases[0][0]
         hit = s[(s["t"] >= first_day * 86400) & (rng.random(len(s)) < trigger)]
@@ -98,9 +129,20 @@ def _assignments(rng: np.random.Generator, s: pd.DataFrame, start: datetime) -> 
         var = np.empty(first.size, dtype=object)
         for j, (_, w) in enumerate(phases):
             sel = ph == j
+            if "srm" in plant and eid == "plain-half":
+                w = {"control": 0.5 + 0.01 * k, "treatment": 0.5 - 0.01 * k}
             var[sel] = rng.choice(variants, size=int(sel.sum()), p=[w[v] for v in variants])
+        if "correlated" in plant and eid == "late-half":
+            other = firsts["plain-half"]["variant"].reindex(first.index).to_numpy()
+            copy = pd.notna(other) & (prng.random(first.size) < 0.10 * k)
+            var[copy] = other[copy]
         of_user = pd.Series(var, index=first.index)
+        firsts[eid] = pd.DataFrame({"t0": first, "variant": of_user})
         hit = hit.assign(variant=hit["user"].map(of_user))
+        if "leakage" in plant and eid == "plain-half":
+            hit = pd.concat([hit, _leaks(prng, hit, first, of_user, 0.03 * k)], ignore_index=True)
+        if "stop" in plant and eid == "plain-half":
+            hit = hit[(hit["t"] < stop) | (hit["t"] >= stop + STOP_HOURS * 3600)]
         rows.append(pd.DataFrame({"unit_id": "u" + hit["user"].astype(str), "experiment_id": eid,
                                   "variant": hit["variant"], "t": hit["t"], "bot": hit["bot"]}))
         for j, (d, w) in enumerate(phases):
@@ -114,19 +156,56 @@ def _assignments(rng: np.random.Generator, s: pd.DataFrame, start: datetime) -> 
     registry = pd.DataFrame(reg)
     for c in ("phase_start", "phase_end"):
         registry[c] = pd.to_datetime(registry[c], utc=True).dt.tz_localize(None)
-    return a, registry
+    return a, registry, firsts
+
+
+def _leaks(prng: np.random.Generator, hit: pd.DataFrame, first: pd.Series, of_user: pd.Series,
+           share: float) -> pd.DataFrame:
+    """One more exposure row, to the other variant, for ``share`` of the units, 6 hours (mean) after the first."""
+    users = first.index.to_numpy()[prng.random(first.size) < share]
+    t = first[users].to_numpy() + prng.exponential(6 * 3600, size=users.size)
+    keep = t < DAYS * 86400
+    users, t = users[keep], t[keep]
+    other = np.where(of_user[users].to_numpy() == "control", "treatment", "control")
+    bot = hit.groupby("user")["bot"].first()[users].to_numpy()
+    return pd.DataFrame({"user": users, "t": t, "bot": bot, "variant": other})
 
 
 def _ts(start: datetime, seconds: pd.Series) -> pd.Series:
     return pd.Timestamp(start.replace(tzinfo=None)) + pd.to_timedelta(np.asarray(seconds), unit="s")
 
 
-def _events(rng: np.random.Generator, s: pd.DataFrame, start: datetime) -> dict[str, pd.DataFrame]:
+def _lifts(s: pd.DataFrame, plant: frozenset[str], firsts: dict[str, pd.DataFrame],
+           k: float) -> tuple[np.ndarray, np.ndarray]:
+    """Per session: the planted factor on reading minutes and on render time (1 where nothing is planted)."""
+    minutes, render = np.ones(len(s)), np.ones(len(s))
+    t = s["t"].to_numpy()
+    for problem in plant & {"guardrail", "fading", "growing", "interference"}:
+        eid = TARGETS[problem][0]
+        f = firsts[eid].reindex(s["user"].to_numpy())
+        age = (t - f["t0"].to_numpy()) / 86400  # NaN for units never exposed
+        treated = (f["variant"].to_numpy() == "treatment") & (age >= 0)
+        if problem == "guardrail":
+            render[treated] *= 1 + 0.05 * k
+        elif problem == "fading":
+            minutes[treated] *= 1 + 0.30 * k * 0.5 ** (age[treated] / 2)
+        elif problem == "growing":
+            minutes[treated] *= 1 + 0.20 * k * np.clip(age[treated] / 14, 0, 1)
+        else:  # the treatment share of the phase running at the session's time
+            phases = EXPERIMENTS[eid][0]
+            j = np.searchsorted([d * 86400 for d, _ in phases], t[treated], side="right") - 1
+            share = np.array([w["treatment"] for _, w in phases])[j]
+            minutes[treated] *= 1 + 0.60 * k * (1 - share)
+    return minutes, render
+
+
+def _events(rng: np.random.Generator, s: pd.DataFrame, start: datetime,
+            lifts: tuple[np.ndarray, np.ndarray]) -> dict[str, pd.DataFrame]:
     unit = "u" + s["user"].astype(str)
     at = _ts(start, s["t"])
     n = len(s)
     out = {"sessions": pd.DataFrame({"unit_id": unit, "started_at": at,
-                                     "minutes": rng.lognormal(1.5, 1.2, size=n)})}
+                                     "minutes": rng.lognormal(1.5, 1.2, size=n) * lifts[0]})}
     buy = rng.random(n) < 0.02
     out["purchases"] = pd.DataFrame({"unit_id": unit[buy], "purchased_at": at[buy],
                                      "amount": rng.lognormal(2.5, 1.0, size=int(buy.sum()))})
@@ -136,7 +215,7 @@ def _events(rng: np.random.Generator, s: pd.DataFrame, start: datetime) -> dict[
     views = rng.poisson(2.0, size=n) + 1
     idx = np.repeat(np.arange(n), views)
     out["renders"] = pd.DataFrame({"unit_id": unit.to_numpy()[idx], "rendered_at": at.to_numpy()[idx],
-                                   "render_ms": device[idx] * rng.lognormal(5.0, 0.6, size=idx.size)})
+                                   "render_ms": device[idx] * rng.lognormal(5.0, 0.6, size=idx.size) * lifts[1][idx]})
     return out
 
 
@@ -162,15 +241,25 @@ def config(db: Path, state: Path) -> dict[str, Any]:
     }
 
 
-def build(directory: Path, seed: int) -> dict[str, Any]:
-    """Write the world for ``seed`` to ``directory/world.duckdb``; return its monitor config."""
-    rng = np.random.default_rng(seed)
+def build(directory: Path, seed: int, plant: tuple[str, ...] = (), strength: float = 1.0) -> dict[str, Any]:
+    """Write the world for ``seed`` to ``directory/world.duckdb``; return its monitor config.
+
+    ``plant``: names from :data:`PROBLEMS` to plant (none by default: the null world), each at
+    ``strength`` times the size :data:`PROBLEMS` states."""
+    unknown = sorted(set(plant) - set(PROBLEMS))
+    if unknown:
+        raise ValueError(f"unknown problem(s) to plant: {', '.join(unknown)} (known: {', '.join(PROBLEMS)})")
+    if not 0 < strength <= 10:
+        raise ValueError(f"strength must be in (0, 10], got {strength:g}")
+    rng, prng = np.random.default_rng(seed), np.random.default_rng([seed, 17])
     start = AS_OF - timedelta(days=DAYS)
     s = _sessions(rng, start)
     s = s[_ts(start, s["t"]) < pd.Timestamp(AS_OF.replace(tzinfo=None))]
-    a, registry = _assignments(rng, s, start)
+    a, registry, firsts = _assignments(rng, s, start, frozenset(plant), prng, strength)
+    humans = s[~s["bot"]]
     tables = {"experiments": registry, "assignments": a.drop(columns="bot"),
-              "assignments_filtered": a[~a["bot"]].drop(columns="bot"), **_events(rng, s[~s["bot"]], start)}
+              "assignments_filtered": a[~a["bot"]].drop(columns="bot"),
+              **_events(rng, humans, start, _lifts(humans, frozenset(plant), firsts, strength))}
     db = directory / "world.duckdb"
     con = duckdb.connect(str(db))
     try:
