@@ -358,7 +358,7 @@ def _why_undefined(m: MetricConfig, i: int, p: _Pairs, est: fx.EffectEstimate) -
         if zero:
             return f"the denominator is zero for every unit of {', '.join(zero)}, so the ratio is undefined"
     if p.ctrl["sum_y"][i] == 0 and p.trt["sum_y"][i] == 0:
-        return "the metric is 0 for every unit in both variants: check that its events arrive"
+        return "the metric is 0 for every unit in both variants so far (if the event is not rare, check that it arrives)"
     if not bool(est.defined[i]):
         return "the metric has no variation within either variant, so no interval can be formed"
     zero = [name for name, arm in ((e.control, p.ctrl), (v, p.trt)) if arm["sum_y"][i] == 0]
@@ -485,14 +485,16 @@ def _finding(s: dict[str, Any], adj: tuple[bool, float] | None, checks: CheckCon
     status = s["status"]
     if status == "undefined":
         why = _why_undefined(m, i, p, est)
-        # A data fault (no events at all, no variation, a zero denominator) with enough units is
+        # A data fault (no variation, a zero denominator) with enough units is
         # worth a look. Otherwise (a rare event with no occurrence yet in one arm) a warn needs
         # valid evidence of harm, from the difference's confidence sequence, as when the control
         # mean is not yet bounded away from 0: "cannot be judged" alone is not evidence.
         lo, up = row["cs_lower"], row["cs_upper"]
         harm = lo is not None and ((lo > 0) if (m.bad_direction or "increase") == "increase" else (up < 0))
         measurable = min(p.ctrl["n"][i], p.trt["n"][i]) >= checks.srm_min_units
-        fault = measurable and not why.startswith(("the metric is 0 for every unit of ", "the relative effect has"))
+        # (no events at all in either arm is not one: a rare event early in an experiment, the usual case;
+        # events that stop arriving are the freshness check's and the readout's to show)
+        fault = measurable and not why.startswith(("the metric is 0 for every unit", "the relative effect has"))
         st = "warn" if (check == "guardrail" and (harm or fault)) else "ok"
         shown = f"; harm established on the difference ({lo:+.4g} to {up:+.4g})" if harm and not fault else ""
         return Finding(e.id, check, s["scope"], st,

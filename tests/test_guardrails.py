@@ -156,7 +156,9 @@ def test_zero_variance_and_all_zero_metrics_give_clean_findings():
     assert f.statistics["cs_relative_lower"] is None and f.statistics["e_value"] is None
     _no_nan(f)
     (z,) = _one(_metric(), [_row("exp", "control", 500, 0.0, 0.0), _row("exp", "treatment", 500, 0.0, 0.0)]).findings
-    assert z.status == "warn" and "0 for every unit" in z.summary
+    # no events yet in either arm: a rare event early on, not evidence of anything (issue 'Quiet when
+    # healthy': this opened a warn on every experiment's rare-event guardrails in the demo's replay)
+    assert z.status == "ok" and "0 for every unit" in z.summary
     _no_nan(z)
     # few units: nothing to judge yet, and no warning either
     (small,) = _one(_metric(), [_row("exp", "control", 20, 0.0, 0.0), _row("exp", "treatment", 20, 0.0, 0.0)]).findings
