@@ -185,6 +185,15 @@ def _notify_parsers(sub: Any, common: Any) -> None:
     um.add_argument("--check", metavar="CHECK", help="remove only the mute of this check")
 
 
+    pr = sub.add_parser("prune", help="remove old runs and the counts of experiments no longer watched (state.keep_days)",
+                        description="Remove, in one transaction, runs older than state.keep_days before the latest recorded "
+                                    "run (with their findings, metric snapshots and query costs) and the hourly counts of "
+                                    "experiments no run has pulled since then. Open and past alerts are kept.")
+    common(pr)
+    pr.add_argument("--keep-days", type=float, metavar="DAYS", help="retention in days (default: state.keep_days)")
+    pr.add_argument("--dry-run", action="store_true", help="count what would be removed; remove nothing")
+
+
 def _observability_options(sp: argparse.ArgumentParser) -> None:
     sp.add_argument("--log-format", choices=["text", "json"], default="text",
                     help="log lines as text or as one JSON object per line (with run id, per-query durations and rows)")
@@ -576,6 +585,29 @@ def _unmute(args: argparse.Namespace, state: Any, err: Console) -> int:
     return 0
 
 
+def _prune(cfg: Config, args: argparse.Namespace, err: Console) -> int:
+    from monitor.state import StateStore, prune
+
+    keep = args.keep_days if args.keep_days is not None else cfg.state.keep_days
+    if keep is None:
+        raise ConfigError("prune: no retention; set state.keep_days in the config or give --keep-days")
+    if keep <= 0:
+        raise ConfigError(f"--keep-days: must be greater than 0, got {keep:g}")
+    state = StateStore(cfg.state.url or "")
+    try:
+        out = prune(state, keep, dry_run=args.dry_run)
+    finally:
+        state.dispose()
+    if out["cutoff"] is None:
+        err.print("prune: no run recorded yet; nothing removed", highlight=False, soft_wrap=True)
+        return 0
+    verb = "would remove" if args.dry_run else "removed"
+    parts = ", ".join(f"{n} from {t}" for t, n in out["removed"].items())
+    err.print(f"prune: kept everything from {out['cutoff']:%Y-%m-%d %H:%M} UTC on; {verb} {parts}",
+              highlight=False, soft_wrap=True)
+    return 0
+
+
 #: A message with every field the outbox puts in an alert notice, for checking templates.
 _SAMPLE_NOTICE = {
     "format": "expwatch.notice/1", "kind": "alerts", "run_id": "validate", "as_of": "2026-01-01T00:00:00Z",
@@ -808,6 +840,9 @@ def _dispatch(args: argparse.Namespace, console: Console, err: Console) -> int:
                 sys.stderr.write(f"expwatch: unhealthy: no run has succeeded yet ({exc})\n")
                 return 1
             return _status(cfg, args)
+        if args.command == "prune":
+            _require_state(cfg, "prune")
+            return _prune(cfg, args, err)
         if args.command in ("digest", "alerts", "mute", "unmute"):
             args.cfg = cfg
             return _notify_command(cfg, args, err)

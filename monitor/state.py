@@ -34,7 +34,7 @@ from sqlalchemy.exc import ArgumentError, IntegrityError, NoSuchModuleError, SQL
 from monitor.errors import ConfigError, StateError
 from monitor.warehouse import safe_url
 
-__all__ = ["SCHEMA_VERSION", "StateStore", "LockHeld"]
+__all__ = ["SCHEMA_VERSION", "StateStore", "LockHeld", "prune"]
 
 log = logging.getLogger("monitor")
 
@@ -468,6 +468,48 @@ class StateStore:
         with self.engine.connect() as conn:
             rows = conn.execute(sa.select(findings).where(findings.c.run_id == run_id).order_by(findings.c.id)).mappings().all()
         return [dict(r) for r in rows]
+
+
+def prune(store: StateStore, keep_days: float, *, dry_run: bool = False) -> dict[str, Any]:
+    """Remove what no later run or report needs, in one transaction.
+
+    The retention counts back from the latest recorded run's data time (``as_of``), not
+    the wall clock, so a monitor stopped for a while keeps what it was watching. Removed:
+    runs older than the cutoff with their findings, metric snapshots and query costs; the
+    hourly counts and watermark of every experiment whose watermark (the data time of the
+    last run that pulled it, renewed by every run while it is live) is older than the
+    cutoff. Live experiments are pulled every run, so their counts are kept for their
+    whole phase. Alerts and their events (the ledger) are kept. Returns the cutoff and
+    the rows removed per table; ``dry_run`` counts them and removes nothing.
+    """
+    with store.engine.connect() as conn:
+        latest = conn.execute(sa.select(sa.func.max(runs.c.as_of))).scalar()
+    removed: dict[str, int] = {}
+    if latest is None:
+        return {"cutoff": None, "removed": removed}
+    if isinstance(latest, str):
+        latest = datetime.fromisoformat(latest)
+    latest = latest.replace(tzinfo=timezone.utc) if latest.tzinfo is None else latest
+    cutoff = latest - timedelta(days=keep_days)
+    with store.transaction() as conn:
+        old_runs = sa.select(runs.c.run_id).where(runs.c.as_of < cutoff).scalar_subquery()
+        gone = (sa.select(watermarks.c.source, watermarks.c.experiment)
+                .where(watermarks.c.pulled_to < cutoff))
+        stale = conn.execute(gone).all()
+        targets: list[tuple[str, Any]] = [
+            (t.name, t.c.run_id.in_(old_runs)) for t in (findings, metric_snapshots, query_costs)
+        ]
+        targets.append((counts.name, sa.or_(sa.false(), *(
+            sa.and_(counts.c.source == src, counts.c.experiment == exp) for src, exp in stale))))
+        targets.append((watermarks.name, watermarks.c.pulled_to < cutoff))
+        targets.append((runs.name, runs.c.as_of < cutoff))
+        for name, where in targets:
+            table = metadata.tables[name]
+            if dry_run:
+                removed[name] = int(conn.execute(sa.select(sa.func.count()).select_from(table).where(where)).scalar() or 0)
+            else:
+                removed[name] = int(conn.execute(sa.delete(table).where(where)).rowcount or 0)
+    return {"cutoff": cutoff, "removed": removed}
 
 
 def _db_times(values: pd.Series, dialect: sa.Dialect) -> list[Any]:
