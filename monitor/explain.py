@@ -42,6 +42,7 @@ from monitor.config import Config
 from monitor.errors import ConfigError
 from monitor.findings import Finding, clean_json
 from monitor.registry import Experiment, Phase
+from monitor.stats import StatsError
 from monitor.stats.diagnosis import (
     categorical_balance,
     diagnose_slices,
@@ -803,7 +804,7 @@ def diagnose_counts(
         try:
             sd = diagnose_stages(totals, w, level=alpha)
             nested = [True] * (len(stage_names) - 1)
-        except ConfigError:
+        except StatsError:
             sd = None
             nested = [bool(np.all(totals[g + 1] <= totals[g])) for g in range(len(stage_names) - 1)]
         single = [diagnose_stages(totals[g:g + 1], w, level=alpha) for g in range(len(stage_names))] if sd is None else None

@@ -10,7 +10,6 @@ comment says otherwise.
 
 from __future__ import annotations
 
-import time
 from datetime import timedelta
 
 import duckdb
@@ -48,15 +47,11 @@ HEALTHY = {
     "audiobook-sample-ramp", "hold-queue-reminder", "kids-corner-'lesefüchse'", "search-autocomplete",
     "author-follow", "shelf-carousel", "night-reading-timer",
 }
-_TIMINGS: dict[str, float] = {}
 
 
 @pytest.fixture(scope="module")
 def demo():
-    t0 = time.perf_counter()
-    tables, summary = demo_tables()
-    _TIMINGS["demo_tables"] = time.perf_counter() - t0
-    return tables, summary
+    return demo_tables()
 
 
 @pytest.fixture(scope="module")
@@ -80,12 +75,6 @@ def _binom_p(k: int, n: int, p: float = 0.5) -> float:
 
 def _spec(eid: str) -> ExperimentSpec:
     return next(s for s in EXPERIMENTS if s.experiment_id == eid)
-
-
-def test_runtime_reported(demo, record_property):
-    seconds = _TIMINGS["demo_tables"]
-    record_property("demo_tables_seconds", round(seconds, 2))
-    print(f"demo_tables() took {seconds:.2f} s; rows: {demo[1].rows}")
 
 
 # ----------------------------------------------------------------- schemas, registry

@@ -23,7 +23,7 @@ from statsmodels.stats.contingency_tables import Table
 from statsmodels.stats.multitest import multipletests
 from statsmodels.stats.proportion import proportions_ztest
 
-from monitor.errors import ConfigError
+from monitor.stats import StatsError
 from monitor.stats.diagnosis import (
     SMD_THRESHOLD,
     categorical_balance,
@@ -79,9 +79,9 @@ def test_holm_matches_statsmodels_property(p):
 
 def test_holm_edge_and_errors():
     assert holm_adjust([]).shape == (0,)
-    with pytest.raises(ConfigError):
+    with pytest.raises(StatsError):
         holm_adjust([0.2, 1.5])
-    with pytest.raises(ConfigError):
+    with pytest.raises(StatsError):
         holm_adjust([np.nan])
 
 
@@ -210,7 +210,7 @@ def test_onset_degenerate_inputs(counts, weights):
     ],
 )
 def test_onset_bad_input(kwargs):
-    with pytest.raises(ConfigError):
+    with pytest.raises(StatsError):
         locate_onset(**kwargs)
 
 
@@ -297,9 +297,9 @@ def test_slices_degenerate(counts, weights):
 
 
 def test_slices_bad_input():
-    with pytest.raises(ConfigError):
+    with pytest.raises(StatsError):
         diagnose_slices([[1, 2]], HALF, level=0.0)
-    with pytest.raises(ConfigError):
+    with pytest.raises(StatsError):
         diagnose_slices([[1, 2]], HALF, max_removed=-1)
 
 
@@ -349,7 +349,7 @@ def test_stages_degenerate():
     # a variant empty at one stage is left out of that transition's test
     res = diagnose_stages([[100, 0, 100], [90, 0, 80]], [1, 1, 1])
     assert res.drop_df[0] == 1 and res.drop_rate[0, 1] == 0.0
-    with pytest.raises(ConfigError, match="stage 0 to stage 1 in variant 1"):
+    with pytest.raises(StatsError, match="stage 0 to stage 1 in variant 1"):
         diagnose_stages([[100, 100], [90, 101]], HALF)
 
 
@@ -469,11 +469,11 @@ def test_smd_degenerate():
     assert res.defined.tolist() == [[False, False]] * 4
     assert res.imbalanced[:, 1].tolist() == [False, False, False, True]
     assert_all_finite(res)
-    with pytest.raises(ConfigError):
+    with pytest.raises(StatsError):
         numeric_balance([1, 2], [1, 2], [1, 2], control=2)
-    with pytest.raises(ConfigError):
+    with pytest.raises(StatsError):
         numeric_balance([1, -2], [1, 2], [1, 2])
-    with pytest.raises(ConfigError):
+    with pytest.raises(StatsError):
         numeric_balance([1, 2], [1, 2, 3], [1, 2])
 
 
@@ -510,9 +510,9 @@ def test_fold_small_slices_edges():
     res = fold_small_slices([], np.zeros((0, 2)), 3)
     assert res.labels == () and res.counts.shape == (0, 2) and res.n_folded == 0
     assert fold_small_slices(["a"], [[1, 1]], 0).labels == ("(other)",)
-    with pytest.raises(ConfigError):
+    with pytest.raises(StatsError):
         fold_small_slices(["(other)", "b"], [[9, 9], [1, 1]], 1)
-    with pytest.raises(ConfigError):
+    with pytest.raises(StatsError):
         fold_small_slices(["a"], [[1, 1], [2, 2]], 1)
-    with pytest.raises(ConfigError):
+    with pytest.raises(StatsError):
         fold_small_slices(["a"], [[1, 1]], -1)

@@ -17,7 +17,7 @@ from hypothesis import example, given, settings
 from hypothesis import strategies as st
 from scipy import integrate, optimize, stats
 
-from monitor.errors import ConfigError
+from monitor.stats import StatsError
 from monitor.stats.effects import (
     LOG_E_VALUE_CAP,
     ConfidenceSequence,
@@ -94,15 +94,15 @@ def test_moments_degenerate_counts() -> None:
 
 
 def test_moments_reject_impossible_sums() -> None:
-    with pytest.raises(ConfigError, match="inconsistent"):
+    with pytest.raises(StatsError, match="inconsistent"):
         moments(10, 10.0, 5.0)  # sum of squares < sum^2 / n
-    with pytest.raises(ConfigError, match="n"):
+    with pytest.raises(StatsError, match="n"):
         moments(-1, 0.0, 0.0)
-    with pytest.raises(ConfigError, match="NaN"):
+    with pytest.raises(StatsError, match="NaN"):
         moments(10, float("nan"), 1.0)
-    with pytest.raises(ConfigError, match="n == 0"):
+    with pytest.raises(StatsError, match="n == 0"):
         moments(0, 1.0, 1.0)
-    with pytest.raises(ConfigError, match="successes"):
+    with pytest.raises(StatsError, match="successes"):
         proportion_moments(10, 11)
 
 
@@ -433,11 +433,11 @@ def test_guardrail_undefined_rows_and_errors() -> None:
     g = guardrail_status([0.5, 0.5], [0.6, 0.6], "increase", defined=[True, False])
     assert g.status.tolist() == ["alert", "undefined"]
     assert not g.alert[1] and not g.warn[1]
-    with pytest.raises(ConfigError, match="bad_direction"):
+    with pytest.raises(StatsError, match="bad_direction"):
         guardrail_status(0.0, 1.0, "up")
-    with pytest.raises(ConfigError, match="margin"):
+    with pytest.raises(StatsError, match="margin"):
         guardrail_status(0.0, 1.0, "increase", margin=-0.1)
-    with pytest.raises(ConfigError, match="lower > upper"):
+    with pytest.raises(StatsError, match="lower > upper"):
         guardrail_status(1.0, 0.0, "increase")
 
 
@@ -537,7 +537,7 @@ def test_cuped_degenerate_covariate() -> None:
     np.testing.assert_allclose(res.adjusted.var, res.unadjusted.var)
     np.testing.assert_allclose(res.variance_reduction, 0.0, atol=1e-15)
     assert_all_finite(res)
-    with pytest.raises(ConfigError, match="variant axis"):
+    with pytest.raises(StatsError, match="variant axis"):
         cuped(10, 1.0, 1.0, 1.0, 1.0, 1.0)
 
 
@@ -569,7 +569,7 @@ def test_bh_vectorised_over_families() -> None:
     for j in range(6):
         np.testing.assert_allclose(res.adjusted[:, j], multipletests(p[j], method="fdr_bh")[1])
     assert res.n_rejected.shape == (6,)
-    with pytest.raises(ConfigError):
+    with pytest.raises(StatsError):
         bh([0.1, 1.2])
 
 
@@ -626,9 +626,9 @@ def test_ebh_zero_and_infinite_e_values() -> None:
     np.testing.assert_array_equal(res.rejected, [False, True, False])
     assert res.adjusted[0] == 1.0 and res.adjusted[1] == 0.0
     assert np.all(np.isfinite(res.adjusted))
-    with pytest.raises(ConfigError):
+    with pytest.raises(StatsError):
         ebh([-1.0, 2.0])
-    with pytest.raises(ConfigError):
+    with pytest.raises(StatsError):
         ebh([np.nan])
 
 
@@ -695,13 +695,13 @@ def test_edge_cases_are_finite_and_masked() -> None:
 
 def test_bad_tuning_parameters() -> None:
     m = moments(10, 5.0, 10.0)
-    with pytest.raises(ConfigError, match="alpha"):
+    with pytest.raises(StatsError, match="alpha"):
         compare_means(m, m, alpha=1.5)
-    with pytest.raises(ConfigError, match="n_star"):
+    with pytest.raises(StatsError, match="n_star"):
         confidence_sequence(0.0, 1.0, 10, n_star=0)
-    with pytest.raises(ConfigError, match="rho"):
+    with pytest.raises(StatsError, match="rho"):
         mixture_e_value(0.0, 1.0, 10, rho=-1.0)
-    with pytest.raises(ConfigError, match="Moments"):
+    with pytest.raises(StatsError, match="Moments"):
         compare_means((10, 5.0, 1.0), m)  # type: ignore[arg-type]
-    with pytest.raises(ConfigError, match="\\[0, 1\\]"):
+    with pytest.raises(StatsError, match="\\[0, 1\\]"):
         compare_proportions(moments(10, 20.0, 50.0), m)

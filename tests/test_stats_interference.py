@@ -27,7 +27,7 @@ import statsmodels.api as sm
 from scipy import stats
 from statsmodels.stats.meta_analysis import combine_effects
 
-from monitor.errors import ConfigError
+from monitor.stats import StatsError
 from monitor.stats.interference import (
     effect_trend,
     independence_chi2,
@@ -82,7 +82,7 @@ def test_trend_edge_cases_are_finite_and_undefined():
     for f in ("slope", "slope_se", "p_value", "q", "i2"):
         assert np.all(np.isfinite(getattr(r, f)))
     assert r.p_value[0] == 1.0 and r.p_value[1] == 1.0
-    with pytest.raises(ConfigError):
+    with pytest.raises(StatsError):
         effect_trend(0.1, 0.1, 0.1)
 
 
@@ -107,7 +107,7 @@ def test_chi2_matches_scipy_chi2_contingency():
                                    + stats.chi2_contingency(b[:2, :2], correction=False)[0], rel=1e-10)
     assert r.df == 2
     assert independence_chi2(np.zeros((1, 2, 2))).p_value == 1.0
-    with pytest.raises(ConfigError):
+    with pytest.raises(StatsError):
         independence_chi2(np.array([[1.0, -1.0], [1.0, 1.0]])[None])
 
 

@@ -9,7 +9,7 @@ import statsmodels.api as sm
 from statsmodels.stats.meta_analysis import combine_effects
 
 from monitor.config import CheckConfig
-from monitor.errors import ConfigError
+from monitor.stats import StatsError
 from monitor.stats import novelty as nv
 
 AGES = np.arange(14)
@@ -76,9 +76,9 @@ def test_degenerate_rows_never_give_nan():
         assert np.all(np.isfinite(getattr(tr, f)))
     cv = nv.converged_effect([0.1, 0.2], [0.01, 0.01], [0, 1])
     assert not cv.defined[0] and cv.long_run[0] == pytest.approx(0.15) and cv.lower[0] < 0.15 < cv.upper[0]
-    with pytest.raises(ConfigError):
+    with pytest.raises(StatsError):
         nv.age_trend([0.1, 0.2], [0.1], [0, 1])
-    with pytest.raises(ConfigError):
+    with pytest.raises(StatsError):
         nv.converged_effect([0.1, 0.2, 0.3], [0.1] * 3, [0, 1, 2], alpha=1.5)
 
 
@@ -129,7 +129,7 @@ def test_no_budget_is_spent_on_looks_that_cannot_be_judged():
     assert nv.first_judgeable_look(1, 7) == 8
     assert nv.first_judgeable_look(28, 7) == 1
     assert nv.first_judgeable_look(7, 13) == 2 and nv.first_judgeable_look(7, 14) == 3
-    with pytest.raises(ConfigError):
+    with pytest.raises(StatsError):
         nv.first_judgeable_look(0, 7)
 
 

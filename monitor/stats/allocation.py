@@ -70,6 +70,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import special, stats
 
+from monitor.stats import StatsError
+
 __all__ = [
     "DEFAULT_CONCENTRATIONS",
     "ChiSquareResult",
@@ -161,21 +163,21 @@ def _checked_counts(counts: object, name: str) -> np.ndarray:
     if arr.dtype == bool or not (
         np.issubdtype(arr.dtype, np.integer) or np.issubdtype(arr.dtype, np.floating)
     ):
-        raise ValueError(
+        raise StatsError(
             f"{name} must be a numeric array of non-negative integers, got dtype {arr.dtype}"
         )
     if np.issubdtype(arr.dtype, np.integer):
         arr = arr.astype(np.int64, copy=False)
         if arr.size and arr.min() < 0:
-            raise ValueError(f"{name} contains negative counts")
+            raise StatsError(f"{name} contains negative counts")
         return arr
     arr = arr.astype(np.float64, copy=False)
     if not np.all(np.isfinite(arr)):
-        raise ValueError(f"{name} contains NaN or infinite values")
+        raise StatsError(f"{name} contains NaN or infinite values")
     if np.any(arr < 0):
-        raise ValueError(f"{name} contains negative counts")
+        raise StatsError(f"{name} contains negative counts")
     if np.any(arr != np.floor(arr)):
-        raise ValueError(f"{name} contains non-integer counts")
+        raise StatsError(f"{name} contains non-integer counts")
     return arr
 
 
@@ -193,11 +195,11 @@ def _as_weights(
     """
     arr = np.asarray(weights, dtype=np.float64)
     if arr.shape != shape:
-        raise ValueError(f"{name} has shape {arr.shape}, expected {shape} (same as the counts)")
+        raise StatsError(f"{name} has shape {arr.shape}, expected {shape} (same as the counts)")
     if arr.size and not (arr.min() >= 0 and arr.max() < np.inf):  # NaN fails both
         if not np.all(np.isfinite(arr)):
-            raise ValueError(f"{name} contains NaN or infinite values")
-        raise ValueError(f"{name} contains negative weights")
+            raise StatsError(f"{name} contains NaN or infinite values")
+        raise StatsError(f"{name} contains negative weights")
     total = _slot_sum(arr)[..., np.newaxis]
     empty = total == 0
     bad = np.abs(total - 1.0) > _WEIGHT_SUM_TOL
@@ -205,7 +207,7 @@ def _as_weights(
         bad &= ~empty
     if np.any(bad):
         worst = float(total[bad].flat[0])
-        raise ValueError(
+        raise StatsError(
             f"{name} rows must sum to 1 (tolerance {_WEIGHT_SUM_TOL:g}); "
             f"found a row summing to {worst:.9g}"
         )
@@ -225,7 +227,7 @@ def _slot_sum(a: np.ndarray) -> np.ndarray:
 def _check_padding(counts: np.ndarray, weights: np.ndarray, name: str) -> None:
     """Raise if a slot of weight 0 (a padding slot) holds units."""
     if np.any((weights == 0) & (counts > 0)):
-        raise ValueError(
+        raise StatsError(
             f"{name} has units in a slot whose weight is 0 (padding slots must have count 0)"
         )
 
@@ -234,9 +236,9 @@ def _as_concentrations(concentrations: object) -> np.ndarray:
     """Return the concentration grid as a 1-D float64 array of positive finite values."""
     arr = np.asarray(concentrations, dtype=np.float64)
     if arr.ndim != 1 or arr.size == 0:
-        raise ValueError("concentrations must be a non-empty 1-D sequence of positive numbers")
+        raise StatsError("concentrations must be a non-empty 1-D sequence of positive numbers")
     if not np.all(np.isfinite(arr)) or np.any(arr <= 0):
-        raise ValueError("concentrations must all be positive and finite")
+        raise StatsError("concentrations must all be positive and finite")
     return arr
 
 
@@ -250,9 +252,9 @@ def _prepare_one_shot(counts: object, weights: object) -> tuple[np.ndarray, np.n
     elif x.ndim == 2:
         w_in = weights
     else:
-        raise ValueError(f"counts must have shape (E, K) or (K,), got {x.ndim} dimensions")
+        raise StatsError(f"counts must have shape (E, K) or (K,), got {x.ndim} dimensions")
     if x.shape[-1] == 0:
-        raise ValueError("counts must have at least one variant slot (K >= 1)")
+        raise StatsError("counts must have at least one variant slot (K >= 1)")
     w = _as_weights(w_in, x.shape, "weights", allow_empty_rows=False)
     _check_padding(x, w, "counts")
     return x, w
@@ -431,7 +433,7 @@ def _sequential_block(
     changed = _weight_changes(w_filled, start, has_weights)
     if changed is not None:
         e_bad, t_bad = np.argwhere(changed)[0]
-        raise ValueError(
+        raise StatsError(
             f"weights change within a phase (experiment row {row0 + e_bad}, look {t_bad + 1}); "
             "start a new phase id"
         )
@@ -479,7 +481,7 @@ def chisquare_gof(counts: object, weights: object) -> ChiSquareResult:
 
     Raises
     ------
-    ValueError
+    StatsError
         If counts are negative, non-integer or non-finite, if shapes differ, if a weight row does
         not sum to 1, or if a padding slot (weight 0) holds units.
 
@@ -551,7 +553,7 @@ def dm_log_bayes_factor(
 
     Raises
     ------
-    ValueError
+    StatsError
         On invalid counts or weights (as :func:`chisquare_gof`) or a concentration that is not
         positive and finite.
 
@@ -614,7 +616,7 @@ def srm_sequential(
 
     Raises
     ------
-    ValueError
+    StatsError
         On shape mismatches, invalid counts or weights, weights that change within a phase,
         decreasing phase ids, ``alpha`` outside (0, 1) or an invalid concentration grid.
 
@@ -646,7 +648,7 @@ def srm_sequential(
     """
     alpha_f = float(alpha)
     if not np.isfinite(alpha_f) or not 0.0 < alpha_f < 1.0:
-        raise ValueError(f"alpha must be strictly between 0 and 1, got {alpha!r}")
+        raise StatsError(f"alpha must be strictly between 0 and 1, got {alpha!r}")
     conc = _as_concentrations(concentrations)
     inc = _checked_counts(increments, "increments")
     ph = np.asarray(phase)
@@ -658,25 +660,25 @@ def srm_sequential(
     elif inc.ndim == 3:
         w_in = np.asarray(weights, dtype=np.float64)
     else:
-        raise ValueError(
+        raise StatsError(
             f"increments must have shape (E, T, K) or (T, K), got {inc.ndim} dimensions"
         )
     n_exp, n_looks, n_slots = inc.shape
     if n_slots == 0:
-        raise ValueError("increments must have at least one variant slot (K >= 1)")
+        raise StatsError("increments must have at least one variant slot (K >= 1)")
     if ph.shape != (n_exp, n_looks):
-        raise ValueError(f"phase has shape {ph.shape}, expected {(n_exp, n_looks)}")
+        raise StatsError(f"phase has shape {ph.shape}, expected {(n_exp, n_looks)}")
     if ph.size and not np.issubdtype(ph.dtype, np.integer):
         integral = np.issubdtype(ph.dtype, np.floating) and bool(
             np.all(np.isfinite(ph)) and np.all(ph == np.floor(ph))
         )
         if not integral:
-            raise ValueError("phase must hold integer phase ids")
+            raise StatsError("phase must hold integer phase ids")
     ph = ph.astype(np.int64, copy=False)
     if np.any(ph[:, 1:] < ph[:, :-1]):
-        raise ValueError("phase ids must be non-decreasing along the look axis")
+        raise StatsError("phase ids must be non-decreasing along the look axis")
     if w_in.shape != inc.shape:
-        raise ValueError(
+        raise StatsError(
             f"weights has shape {w_in.shape}, expected {inc.shape} (same as the counts)"
         )
     threshold = float(np.log(1.0 / alpha_f))

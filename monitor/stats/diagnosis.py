@@ -29,7 +29,7 @@ from typing import Any
 import numpy as np
 from scipy import special, stats
 
-from monitor.errors import ConfigError
+from monitor.stats import StatsError
 
 __all__ = [
     "CategoricalBalance",
@@ -317,11 +317,11 @@ def _weights(weights: Any) -> np.ndarray:
     try:
         w = np.asarray(weights, dtype=float)
     except (TypeError, ValueError) as exc:
-        raise ConfigError(f"weights must be numbers, got {weights!r}") from exc
+        raise StatsError(f"weights must be numbers, got {weights!r}") from exc
     if w.ndim != 1 or w.size == 0:
-        raise ConfigError(f"weights must be a non-empty 1-d sequence, got shape {w.shape}")
+        raise StatsError(f"weights must be a non-empty 1-d sequence, got shape {w.shape}")
     if not np.all(np.isfinite(w)) or np.any(w <= 0):
-        raise ConfigError(f"weights must be finite and > 0, got {w.tolist()}")
+        raise StatsError(f"weights must be finite and > 0, got {w.tolist()}")
     return w / w.sum()
 
 
@@ -329,17 +329,17 @@ def _counts(counts: Any, k: int | None, name: str) -> np.ndarray:
     try:
         x = np.asarray(counts, dtype=float)
     except (TypeError, ValueError) as exc:
-        raise ConfigError(f"{name} must be numeric counts") from exc
+        raise StatsError(f"{name} must be numeric counts") from exc
     if x.size == 0 and k is not None:
         return np.zeros((0, k))
     if x.ndim != 2:
-        raise ConfigError(f"{name} must be 2-d (rows x variants), got shape {x.shape}")
+        raise StatsError(f"{name} must be 2-d (rows x variants), got shape {x.shape}")
     if k is not None and x.shape[1] != k:
-        raise ConfigError(f"{name} has {x.shape[1]} variant columns but there are {k} weights")
+        raise StatsError(f"{name} has {x.shape[1]} variant columns but there are {k} weights")
     if not np.all(np.isfinite(x)):
-        raise ConfigError(f"{name} contains NaN or infinite values")
+        raise StatsError(f"{name} contains NaN or infinite values")
     if np.any(x < 0):
-        raise ConfigError(f"{name} contains negative counts")
+        raise StatsError(f"{name} contains negative counts")
     return x
 
 
@@ -347,9 +347,9 @@ def _level(level: float, name: str = "level") -> float:
     try:
         lv = float(level)
     except (TypeError, ValueError) as exc:
-        raise ConfigError(f"{name} must be a number in (0, 1), got {level!r}") from exc
+        raise StatsError(f"{name} must be a number in (0, 1), got {level!r}") from exc
     if not 0.0 < lv < 1.0:
-        raise ConfigError(f"{name} must be in (0, 1), got {level!r}")
+        raise StatsError(f"{name} must be in (0, 1), got {level!r}")
     return lv
 
 
@@ -422,7 +422,7 @@ def holm_adjust(p_values: Any) -> np.ndarray:
     """
     p = np.asarray(p_values, dtype=float).ravel()
     if not np.all(np.isfinite(p)) or np.any((p < 0) | (p > 1)):
-        raise ConfigError("p_values must be finite and in [0, 1]")
+        raise StatsError("p_values must be finite and in [0, 1]")
     m = p.size
     order = np.argsort(p, kind="stable")
     adj = np.minimum(np.maximum.accumulate((m - np.arange(m)) * p[order]), 1.0)
@@ -504,7 +504,7 @@ def locate_onset(
        1954.
     """
     if model not in _MODELS:
-        raise ConfigError(f"model must be one of {_MODELS}, got {model!r}")
+        raise StatsError(f"model must be one of {_MODELS}, got {model!r}")
     level = _level(band_level, "band_level")
     w = _weights(weights)
     x = _counts(counts, w.size, "counts")
@@ -629,7 +629,7 @@ def diagnose_slices(
     x = _counts(counts, w.size, "counts")
     s_len = x.shape[0]
     if max_removed is not None and (int(max_removed) != max_removed or max_removed < 0):
-        raise ConfigError(f"max_removed must be a non-negative integer, got {max_removed!r}")
+        raise StatsError(f"max_removed must be a non-negative integer, got {max_removed!r}")
     limit = s_len if max_removed is None else min(int(max_removed), s_len)
 
     units = x.sum(axis=1)
@@ -718,7 +718,7 @@ def diagnose_stages(counts: Any, weights: Any, *, level: float = 0.001) -> Stage
 
     Raises
     ------
-    ConfigError
+    StatsError
         If a count grows from one stage to the next.
 
     References
@@ -739,7 +739,7 @@ def diagnose_stages(counts: Any, weights: Any, *, level: float = 0.001) -> Stage
     dropped = x[:-1] - x[1:] if g_len else np.zeros((0, k))
     if np.any(dropped < 0):
         g, v = np.argwhere(dropped < 0)[0]
-        raise ConfigError(
+        raise StatsError(
             f"counts grow from stage {g} to stage {g + 1} in variant {v}: stages must be nested"
         )
     drop_rate = _safe_div(dropped, x[:-1]) if g_len else np.zeros((0, k))
@@ -880,19 +880,19 @@ def numeric_balance(
             np.asarray(n, dtype=float), np.asarray(total, dtype=float), np.asarray(total_sq, dtype=float)
         )
     except ValueError as exc:
-        raise ConfigError("n, total and total_sq must have broadcastable shapes") from exc
+        raise StatsError("n, total and total_sq must have broadcastable shapes") from exc
     if cnt.ndim == 0 or cnt.shape[-1] == 0:
-        raise ConfigError("n, total and total_sq need a last axis of variants")
+        raise StatsError("n, total and total_sq need a last axis of variants")
     k = cnt.shape[-1]
     if int(control) != control or not 0 <= control < k:
-        raise ConfigError(f"control must be a variant index in [0, {k}), got {control!r}")
+        raise StatsError(f"control must be a variant index in [0, {k}), got {control!r}")
     if not (np.all(np.isfinite(cnt)) and np.all(np.isfinite(s1)) and np.all(np.isfinite(s2))):
-        raise ConfigError("n, total and total_sq must be finite")
+        raise StatsError("n, total and total_sq must be finite")
     if np.any(cnt < 0) or np.any(s2 < 0):
-        raise ConfigError("n and total_sq must be non-negative")
+        raise StatsError("n and total_sq must be non-negative")
     thr = float(threshold)
     if not thr > 0:
-        raise ConfigError(f"threshold must be > 0, got {threshold!r}")
+        raise StatsError(f"threshold must be > 0, got {threshold!r}")
 
     mean = _safe_div(s1, cnt)
     var = np.maximum(_safe_div(s2 - cnt * mean**2, cnt - 1.0), 0.0)
@@ -959,14 +959,14 @@ def fold_small_slices(
     """
     labs = list(labels)
     if int(k) != k or k < 0:
-        raise ConfigError(f"k must be a non-negative integer, got {k!r}")
+        raise StatsError(f"k must be a non-negative integer, got {k!r}")
     x = np.asarray(counts, dtype=float)
     if x.size == 0:
         x = np.zeros((0, x.shape[1] if x.ndim == 2 else 0))
     else:
         x = _counts(x, None, "counts")
     if len(labs) != x.shape[0]:
-        raise ConfigError(f"{len(labs)} labels but {x.shape[0]} rows of counts")
+        raise StatsError(f"{len(labs)} labels but {x.shape[0]} rows of counts")
     units = x.sum(axis=1)
     order = np.argsort(-units, kind="stable")
     order = order[units[order] > 0]
@@ -975,7 +975,7 @@ def fold_small_slices(
     fold_mask[kept] = False
     kept_labels = [labs[i] for i in kept]
     if any(lab == other_label for lab in kept_labels):
-        raise ConfigError(f"other_label {other_label!r} clashes with a kept slice label")
+        raise StatsError(f"other_label {other_label!r} clashes with a kept slice label")
     other = x[fold_mask].sum(axis=0)
     folded_units = float(other.sum())
     if folded_units > 0:

@@ -139,7 +139,7 @@ from typing import Any
 import numpy as np
 from scipy import stats
 
-from monitor.errors import ConfigError
+from monitor.stats import StatsError
 
 __all__ = [
     "DEFAULT_ALPHA",
@@ -507,16 +507,16 @@ def _as_float(x: object, name: str) -> np.ndarray:
     try:
         arr = np.asarray(x, dtype=float)
     except (TypeError, ValueError) as exc:
-        raise ConfigError(f"{name} must be numeric, got {type(x).__name__}") from exc
+        raise StatsError(f"{name} must be numeric, got {type(x).__name__}") from exc
     if not np.all(np.isfinite(arr)):
-        raise ConfigError(f"{name} contains NaN or infinite values ({np.sum(~np.isfinite(arr))})")
+        raise StatsError(f"{name} contains NaN or infinite values ({np.sum(~np.isfinite(arr))})")
     return arr
 
 
 def _as_count(x: object, name: str) -> np.ndarray:
     arr = _as_float(x, name)
     if np.any(arr < 0):
-        raise ConfigError(f"{name} must be >= 0, found {np.sum(arr < 0)} negative value(s)")
+        raise StatsError(f"{name} must be >= 0, found {np.sum(arr < 0)} negative value(s)")
     return arr
 
 
@@ -524,9 +524,9 @@ def _check_alpha(alpha: object) -> float:
     try:
         a = float(alpha)  # type: ignore[arg-type]
     except (TypeError, ValueError) as exc:
-        raise ConfigError(f"alpha must be a number in (0, 1), got {alpha!r}") from exc
+        raise StatsError(f"alpha must be a number in (0, 1), got {alpha!r}") from exc
     if not 0.0 < a < 1.0:
-        raise ConfigError(f"alpha must be in (0, 1), got {a}")
+        raise StatsError(f"alpha must be in (0, 1), got {a}")
     return a
 
 
@@ -544,7 +544,7 @@ def _centred(
     if scale is not None:  # a sum of squares: must not be negative beyond rounding
         bad = c < -_SS_RTOL * np.maximum(scale, 1.0)
         if np.any(bad):
-            raise ConfigError(
+            raise StatsError(
                 f"inconsistent sufficient statistics: {name} < sum**2 / n in {np.sum(bad)} row(s)"
             )
         c = np.maximum(c, 0.0)
@@ -573,7 +573,7 @@ def moments(n: object, sum_y: object, sum_y2: object) -> Moments:
 
     Raises
     ------
-    ConfigError
+    StatsError
         Non-finite input, negative ``n`` or ``sum_y2``, ``sum_y != 0`` with ``n == 0``, or a sum
         of squares smaller than ``sum_y^2 / n`` beyond rounding error (impossible for real data).
 
@@ -589,7 +589,7 @@ def moments(n: object, sum_y: object, sum_y2: object) -> Moments:
         _as_count(n, "n"), _as_float(sum_y, "sum_y"), _as_count(sum_y2, "sum_y2")
     )
     if np.any((n_ == 0) & (sy != 0)):
-        raise ConfigError("sum_y is non-zero in a row with n == 0")
+        raise StatsError("sum_y is non-zero in a row with n == 0")
     has = n_ > 0
     mean = np.where(has, sy / np.where(has, n_, 1.0), 0.0)
     ss = _centred(syy, sy, sy, n_, syy, "sum_y2")
@@ -616,7 +616,7 @@ def proportion_moments(n: object, successes: object) -> Moments:
 
     Raises
     ------
-    ConfigError
+    StatsError
         Non-finite or negative input, or ``successes > n``.
 
     Notes
@@ -626,7 +626,7 @@ def proportion_moments(n: object, successes: object) -> Moments:
     """
     n_, s = np.broadcast_arrays(_as_count(n, "n"), _as_count(successes, "successes"))
     if np.any(s > n_):
-        raise ConfigError(f"successes exceed n in {np.sum(s > n_)} row(s)")
+        raise StatsError(f"successes exceed n in {np.sum(s > n_)} row(s)")
     has = n_ > 0
     p = np.where(has, s / np.where(has, n_, 1.0), 0.0)
     return Moments(n=n_.astype(float), mean=p, var=p * (1.0 - p), defined=n_ >= 2)
@@ -661,7 +661,7 @@ def ratio_moments(
 
     Raises
     ------
-    ConfigError
+    StatsError
         Non-finite input, negative counts or sums of squares, or inconsistent sums.
 
     Notes
@@ -686,7 +686,7 @@ def ratio_moments(
         _as_float(sum_xy, "sum_xy"),
     )
     if np.any((n_ == 0) & ((sy != 0) | (sx != 0))):
-        raise ConfigError("sum_y or sum_x is non-zero in a row with n == 0")
+        raise StatsError("sum_y or sum_x is non-zero in a row with n == 0")
     defined = (n_ >= 2) & (sx != 0)
     safe_n = np.where(n_ >= 2, n_, 2.0)
     ss_y = _centred(syy, sy, sy, n_, syy, "sum_y2")
@@ -727,7 +727,7 @@ def mixture_rho(n_star: object = DEFAULT_N_STAR, alpha: float = DEFAULT_ALPHA) -
 
     Raises
     ------
-    ConfigError
+    StatsError
         ``n_star`` not positive, or ``alpha`` outside (0, 1).
 
     Notes
@@ -747,7 +747,7 @@ def mixture_rho(n_star: object = DEFAULT_N_STAR, alpha: float = DEFAULT_ALPHA) -
     a = _check_alpha(alpha)
     ns = _as_float(n_star, "n_star")
     if np.any(ns <= 0):
-        raise ConfigError("n_star must be > 0")
+        raise StatsError("n_star must be > 0")
     c = -2.0 * np.log(a)
     u = c
     for _ in range(100):
@@ -764,7 +764,7 @@ def _resolve_rho(rho: object, n_star: object, alpha: float) -> np.ndarray:
         return mixture_rho(n_star, alpha)
     r = _as_float(rho, "rho")
     if np.any(r <= 0):
-        raise ConfigError("rho must be > 0")
+        raise StatsError("rho must be > 0")
     return r
 
 
@@ -818,7 +818,7 @@ def confidence_sequence(
 
     Raises
     ------
-    ConfigError
+    StatsError
         Non-finite input, negative ``se`` or ``n``, bad ``alpha``, ``n_star`` or ``rho``.
 
     Notes
@@ -1035,7 +1035,7 @@ def _assemble(
 
 def _check_moments(m: object, name: str) -> Moments:
     if not isinstance(m, Moments):
-        raise ConfigError(f"{name} must be a Moments object, got {type(m).__name__}")
+        raise StatsError(f"{name} must be a Moments object, got {type(m).__name__}")
     return m
 
 
@@ -1074,7 +1074,7 @@ def compare_means(
 
     Raises
     ------
-    ConfigError
+    StatsError
         Arguments are not :class:`Moments`, or bad tuning parameters.
 
     Notes
@@ -1141,7 +1141,7 @@ def compare_proportions(
 
     Raises
     ------
-    ConfigError
+    StatsError
         A mean outside [0, 1], arguments that are not :class:`Moments`, or bad tuning.
 
     Notes
@@ -1156,7 +1156,7 @@ def compare_proportions(
         c.n, t.n, c.mean, t.mean, c.defined, t.defined
     )
     if np.any((p_c < 0) | (p_c > 1) | (p_t < 0) | (p_t > 1)):
-        raise ConfigError("compare_proportions needs means in [0, 1]")
+        raise StatsError("compare_proportions needs means in [0, 1]")
     arms = d_c & d_t
     safe_nc, safe_nt = np.where(arms, n_c, 2.0), np.where(arms, n_t, 2.0)
     v_c = np.where(arms, p_c * (1 - p_c) / safe_nc, 0.0)
@@ -1197,7 +1197,7 @@ def compare_ratios(
 
     Raises
     ------
-    ConfigError
+    StatsError
         Arguments that are not :class:`RatioMoments`, or bad tuning parameters.
 
     Notes
@@ -1214,7 +1214,7 @@ def compare_ratios(
     a = _check_alpha(alpha)
     for m, name in ((control, "control"), (treatment, "treatment")):
         if not isinstance(m, RatioMoments):
-            raise ConfigError(f"{name} must be a RatioMoments object, got {type(m).__name__}")
+            raise StatsError(f"{name} must be a RatioMoments object, got {type(m).__name__}")
     n_c, n_t, r_c, r_t, v_c, v_t, d_c, d_t = np.broadcast_arrays(
         control.n, treatment.n, control.ratio, treatment.ratio, control.var_ratio,
         treatment.var_ratio, control.defined, treatment.defined,
@@ -1262,7 +1262,7 @@ def guardrail_status(
 
     Raises
     ------
-    ConfigError
+    StatsError
         Unknown direction, negative or non-finite margin, ``lower > upper``, or non-finite bounds.
 
     Notes
@@ -1274,14 +1274,14 @@ def guardrail_status(
     """
     lo, up = np.broadcast_arrays(_as_float(lower, "lower"), _as_float(upper, "upper"))
     if np.any(lo > up):
-        raise ConfigError(f"lower > upper in {np.sum(lo > up)} row(s)")
+        raise StatsError(f"lower > upper in {np.sum(lo > up)} row(s)")
     mg = _as_float(margin, "margin")
     if np.any(mg < 0):
-        raise ConfigError("margin must be >= 0")
+        raise StatsError("margin must be >= 0")
     direction = np.asarray(bad_direction, dtype=str)
     unknown = ~np.isin(direction, ["increase", "decrease"])
     if np.any(unknown):
-        raise ConfigError(
+        raise StatsError(
             f"bad_direction must be 'increase' or 'decrease', got {direction[unknown].flat[0]!r}"
         )
     ok_mask = np.ones(lo.shape, bool) if defined is None else np.asarray(defined, dtype=bool)
@@ -1335,7 +1335,7 @@ def cuped(
 
     Raises
     ------
-    ConfigError
+    StatsError
         Non-finite input, negative counts or sums of squares, or inconsistent sums.
 
     Notes
@@ -1362,10 +1362,10 @@ def cuped(
         _as_float(sum_yc, "sum_yc"),
     )
     if arrs[0].ndim == 0:
-        raise ConfigError("cuped needs a variant axis (arrays of at least one dimension)")
+        raise StatsError("cuped needs a variant axis (arrays of at least one dimension)")
     n_, sy, syy, sc, scc, syc = (np.moveaxis(x, axis, -1) for x in arrs)
     if np.any((n_ == 0) & (sc != 0)):
-        raise ConfigError("sum_c is non-zero in a row with n == 0")
+        raise StatsError("sum_c is non-zero in a row with n == 0")
     y = moments(n_, sy, syy)
     cm = moments(n_, sc, scc)
     safe_n1 = np.where(y.defined, n_ - 1.0, 1.0)
@@ -1409,7 +1409,7 @@ def cuped(
 
 def _family_view(x: np.ndarray, axis: int) -> np.ndarray:
     if x.ndim == 0:
-        raise ConfigError("a family of hypotheses must be an array of at least one dimension")
+        raise StatsError("a family of hypotheses must be an array of at least one dimension")
     return np.moveaxis(x, axis, -1)
 
 
@@ -1439,7 +1439,7 @@ def bh(p_values: object, *, alpha: float = DEFAULT_ALPHA, axis: int = -1) -> Mul
 
     Raises
     ------
-    ConfigError
+    StatsError
         p-values outside [0, 1] or non-finite, a zero-dimensional input, or bad ``alpha``.
 
     Notes
@@ -1456,7 +1456,7 @@ def bh(p_values: object, *, alpha: float = DEFAULT_ALPHA, axis: int = -1) -> Mul
     a = _check_alpha(alpha)
     p = _family_view(_as_float(p_values, "p_values"), axis)
     if np.any((p < 0) | (p > 1)):
-        raise ConfigError("p_values must lie in [0, 1]")
+        raise StatsError("p_values must lie in [0, 1]")
     m = p.shape[-1]
     if m == 0:
         adj = p.copy()
@@ -1504,7 +1504,7 @@ def ebh(e_values: object, *, alpha: float = DEFAULT_ALPHA, axis: int = -1) -> Mu
 
     Raises
     ------
-    ConfigError
+    StatsError
         Negative or NaN e-values, a zero-dimensional input, or bad ``alpha``.
 
     Notes
@@ -1525,9 +1525,9 @@ def ebh(e_values: object, *, alpha: float = DEFAULT_ALPHA, axis: int = -1) -> Mu
     try:
         e = np.asarray(e_values, dtype=float)
     except (TypeError, ValueError) as exc:
-        raise ConfigError("e_values must be numeric") from exc
+        raise StatsError("e_values must be numeric") from exc
     if np.any(np.isnan(e)) or np.any(e < 0):
-        raise ConfigError("e_values must be nonnegative numbers (NaN is not allowed)")
+        raise StatsError("e_values must be nonnegative numbers (NaN is not allowed)")
     e = _family_view(e, axis)
     m = e.shape[-1]
     if m == 0:

@@ -44,7 +44,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
-from monitor.errors import ConfigError
+from monitor.stats import StatsError
+from monitor.stats.trend import weighted_sums
 
 __all__ = [
     "IndependenceResult",
@@ -155,22 +156,14 @@ def effect_trend(estimate: object, se: object, x: object, use: object = None) ->
     xv = np.asarray(x, dtype=float)
     y, s, xv = np.broadcast_arrays(y, s, xv)
     if y.ndim == 0:
-        raise ConfigError("effect_trend needs at least one estimate per row")
+        raise StatsError("effect_trend needs at least one estimate per row")
     ok = np.isfinite(y) & np.isfinite(s) & np.isfinite(xv) & (s > 0)
     if use is not None:
         ok &= np.broadcast_to(np.asarray(use, dtype=bool), y.shape)
-    w = np.where(ok, 1.0 / np.where(ok, s, 1.0) ** 2, 0.0)
-    y0, x0 = np.where(ok, y, 0.0), np.where(ok, xv, 0.0)
-    k = ok.sum(axis=-1)
-    sw = w.sum(axis=-1)
-    safe_sw = np.where(sw > 0, sw, 1.0)
-    ybar = (w * y0).sum(axis=-1) / safe_sw
-    xbar = (w * x0).sum(axis=-1) / safe_sw
-    dx = np.where(ok, x0 - xbar[..., None], 0.0)
-    dy = np.where(ok, y0 - ybar[..., None], 0.0)
-    sxx = (w * dx * dx).sum(axis=-1)
-    sxy = (w * dx * dy).sum(axis=-1)
-    q = (w * dy * dy).sum(axis=-1)
+    ws = weighted_sums(y, s, xv, ok)
+    k, sw, safe_sw, ybar, xbar = ws.k, ws.sw, ws.safe_sw, ws.ybar, ws.xbar
+    sxx, sxy, q = ws.sxx, ws.sxy, ws.q
+    x0 = np.where(ok, xv, 0.0)
     # a covariate that is constant (up to rounding) has no trend
     hi = np.max(np.where(ok, x0, -np.inf), axis=-1, initial=-np.inf)
     lo = np.min(np.where(ok, x0, np.inf), axis=-1, initial=np.inf)
@@ -258,9 +251,9 @@ def independence_chi2(table: object) -> IndependenceResult:
     """
     t = np.asarray(table, dtype=float)
     if t.ndim < 3:
-        raise ConfigError("independence_chi2 needs counts shaped (..., strata, rows, columns)")
+        raise StatsError("independence_chi2 needs counts shaped (..., strata, rows, columns)")
     if np.any(~np.isfinite(t)) or np.any(t < 0):
-        raise ConfigError("independence_chi2 needs finite non-negative counts")
+        raise StatsError("independence_chi2 needs finite non-negative counts")
     rows = t.sum(axis=-1)
     cols = t.sum(axis=-2)
     n_s = rows.sum(axis=-1)
@@ -339,7 +332,7 @@ def interaction_wald(mean: object, var: object) -> InteractionResult:
     v = np.asarray(var, dtype=float)
     m, v = np.broadcast_arrays(m, v)
     if m.ndim < 2 or m.shape[-1] < 2 or m.shape[-2] < 2:
-        raise ConfigError("interaction_wald needs cells shaped (..., R >= 2, C >= 2)")
+        raise StatsError("interaction_wald needs cells shaped (..., R >= 2, C >= 2)")
     R, C = m.shape[-2:]
     defined = np.all(np.isfinite(v) & (v > 0) & np.isfinite(m), axis=(-1, -2))
     m0 = np.where(np.isfinite(m), m, 0.0)
@@ -408,7 +401,7 @@ def stratified_interaction_wald(mean: object, var: object) -> InteractionResult:
     m = np.asarray(mean, dtype=float)
     v = np.asarray(var, dtype=float)
     if m.ndim != 3 or m.shape != v.shape or m.shape[1] < 2 or m.shape[2] < 2:
-        raise ConfigError("stratified_interaction_wald needs mean and var shaped (S, R >= 2, C >= 2)")
+        raise StatsError("stratified_interaction_wald needs mean and var shaped (S, R >= 2, C >= 2)")
     _, R, C = m.shape
     L = _interaction_matrix(R, C)
     D = L.shape[0]
@@ -489,7 +482,7 @@ def ratio_change(n: object, sums: object, products: object) -> RatioChange:
     sm = np.asarray(sums, dtype=float)
     pr = np.asarray(products, dtype=float)
     if sm.shape[-1:] != (4,) or pr.shape[-2:] != (4, 4):
-        raise ConfigError("ratio_change needs sums (..., 4) and products (..., 4, 4)")
+        raise StatsError("ratio_change needs sums (..., 4) and products (..., 4, 4)")
     safe_n = np.where(nn >= 2, nn, 2.0)
     mean = sm / safe_n[..., None]
     cov = (pr - sm[..., :, None] * sm[..., None, :] / safe_n[..., None, None]) / (safe_n - 1)[..., None, None]

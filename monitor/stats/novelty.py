@@ -46,7 +46,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
-from monitor.errors import ConfigError
+from monitor.stats import StatsError
+from monitor.stats.trend import weighted_sums
 
 __all__ = [
     "AgeTrend",
@@ -67,7 +68,7 @@ def _inputs(effect: object, se: object, age: object, mask: object | None
     s = np.atleast_2d(np.asarray(se, dtype=np.float64))
     a = np.broadcast_to(np.asarray(age, dtype=np.float64), r.shape)
     if r.shape != s.shape:
-        raise ConfigError(f"effect and se must have one shape, got {r.shape} and {s.shape}")
+        raise StatsError(f"effect and se must have one shape, got {r.shape} and {s.shape}")
     m = np.ones(r.shape, dtype=bool) if mask is None else np.broadcast_to(np.asarray(mask, dtype=bool), r.shape)
     ok = m & np.isfinite(r) & np.isfinite(s) & (s > 0) & np.isfinite(a) & (a >= 0)
     return np.where(ok, r, 0.0), np.where(ok, s, 1.0), np.where(ok, a, 0.0), ok
@@ -130,7 +131,7 @@ def _cov(cov: object | None, ok: np.ndarray) -> np.ndarray | None:
     if c.ndim == 2:
         c = c[None]
     if c.shape != ok.shape + ok.shape[-1:]:
-        raise ConfigError(f"cov must have shape {ok.shape + ok.shape[-1:]}, got {c.shape}")
+        raise StatsError(f"cov must have shape {ok.shape + ok.shape[-1:]}, got {c.shape}")
     both = ok[..., :, None] & ok[..., None, :]
     return np.where(both & np.isfinite(c), c, 0.0)
 
@@ -190,18 +191,11 @@ def age_trend(effect: object, se: object, age: object, *, mask: object | None = 
     """
     r, s, a, ok = _inputs(effect, se, age, mask)
     x = np.log1p(a) if log_age else a
-    w = np.where(ok, 1.0 / s**2, 0.0)
-    k = ok.sum(axis=-1)
-    sw = w.sum(axis=-1)
-    safe_sw = np.where(sw > 0, sw, 1.0)
-    pooled = (w * r).sum(axis=-1) / safe_sw
-    xbar = (w * x).sum(axis=-1) / safe_sw
-    dx = np.where(ok, x - xbar[..., None], 0.0)
-    sxx = (w * dx**2).sum(axis=-1)
+    ws = weighted_sums(r, s, x, ok)
+    w, k, sw, safe_sw, pooled, xbar, dx, sxx = ws.w, ws.k, ws.sw, ws.safe_sw, ws.ybar, ws.xbar, ws.dx, ws.sxx
     defined = (k >= 3) & (sxx > 1e-12 * np.maximum(sw, 1e-300))
     safe_sxx = np.where(defined, sxx, 1.0)
-    dr = np.where(ok, r - pooled[..., None], 0.0)
-    slope = np.where(defined, (w * dx * dr).sum(axis=-1) / safe_sxx, 0.0)
+    slope = np.where(defined, ws.sxy / safe_sxx, 0.0)
     c = _cov(cov, ok)
     coef = w * dx / safe_sxx[..., None]
     slope_se = np.where(defined, np.sqrt(_quad(coef, c, 1.0 / safe_sxx)), 0.0)
@@ -209,7 +203,7 @@ def age_trend(effect: object, se: object, age: object, *, mask: object | None = 
     intercept = np.where(defined, pooled - slope * xbar, pooled)
     z = np.where(defined, slope / np.where(defined, slope_se, 1.0), 0.0)
     p = np.where(defined, 2.0 * stats.norm.sf(np.abs(z)), 1.0)
-    q = (w * dr**2).sum(axis=-1)
+    q = ws.q
     q_df = np.maximum(k - 1, 0).astype(np.float64)
     q_p = np.where(k >= 2, stats.chi2.sf(q, np.maximum(q_df, 1.0)), 1.0)
     q_res = np.where(defined, np.maximum(q - slope**2 * sxx, 0.0), 0.0)
@@ -300,11 +294,11 @@ def converged_effect(effect: object, se: object, age: object, *, mask: object | 
     ``long_run`` is then the pooled mean and the interval its normal interval.
     """
     if not 0 < alpha < 1:
-        raise ConfigError(f"alpha must be in (0, 1), got {alpha!r}")
+        raise StatsError(f"alpha must be in (0, 1), got {alpha!r}")
     r, s, a, ok = _inputs(effect, se, age, mask)
     grid = DEFAULT_TAUS if taus is None else np.asarray(taus, dtype=np.float64)
     if grid.ndim != 1 or grid.size == 0 or np.any(grid <= 0):
-        raise ConfigError("taus must be a non-empty list of positive time constants")
+        raise StatsError("taus must be a non-empty list of positive time constants")
     w = np.where(ok, 1.0 / s**2, 0.0)
     k = ok.sum(axis=-1)
     max_age = np.where(ok, a, 0.0).max(axis=-1)
@@ -350,7 +344,7 @@ def converged_effect(effect: object, se: object, age: object, *, mask: object | 
     lower = np.where(defined, lo, pooled - zq * pse)
     upper = np.where(defined, hi, pooled + zq * pse)
     if tolerance <= 0:
-        raise ConfigError(f"tolerance must be positive, got {tolerance!r}")
+        raise StatsError(f"tolerance must be positive, got {tolerance!r}")
     ratio = np.abs(delta) / tolerance
     after = np.where(ratio > 1, np.ceil(tau * np.log(np.where(ratio > 1, ratio, 1.0))), 0.0)
     return ConvergedEffect(
@@ -370,7 +364,7 @@ def first_judgeable_look(look_days: int, min_days: int) -> int:
     them is ``ceil((min_days + 1) / look_days)`` (2 with the defaults 7 and 7).
     """
     if look_days < 1 or min_days < 0:
-        raise ConfigError(f"look_days must be >= 1 and min_days >= 0, got {look_days} and {min_days}")
+        raise StatsError(f"look_days must be >= 1 and min_days >= 0, got {look_days} and {min_days}")
     return max(1, -(-(min_days + 1) // look_days))
 
 
