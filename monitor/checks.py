@@ -46,27 +46,15 @@ from monitor.config import CheckConfig
 from monitor.findings import Finding
 from monitor.registry import Experiment, RegistryProblem
 from monitor.stats.allocation import DEFAULT_CONCENTRATIONS, chisquare_gof, srm_sequential
+from monitor.wording import ceil_hour, floor_hour, fmt_p
 
 __all__ = ["HourlyCounts", "allocation_findings", "allocation_findings_from", "design_findings", "hour_index", "hourly_by_variant"]
 
 HOUR = timedelta(hours=1)
 
 
-def _floor_hour(t: datetime) -> datetime:
-    return t.replace(minute=0, second=0, microsecond=0)
-
-
-def _ceil_hour(t: datetime) -> datetime:
-    f = _floor_hour(t)
-    return f if f == t else f + HOUR
-
-
 def _fmt_share(shares: dict[str, float]) -> str:
     return "/".join(f"{100 * s:.1f}" for s in shares.values())
-
-
-def _fmt_p(p: float) -> str:
-    return f"{p:.2g}" if p >= 1e-300 else "<1e-300"
 
 
 def _fmt_e(log_e: float) -> str:
@@ -207,8 +195,8 @@ def _srm_findings(
         return []
     E = len(exps)
     K = max(len(e.variants) for e in exps)
-    t0s = [_floor_hour(e.start) for e in exps]
-    t_end = _ceil_hour(as_of)
+    t0s = [floor_hour(e.start) for e in exps]
+    t_end = ceil_hour(as_of)
     T = max(1, max(int((t_end - t) / HOUR) for t in t0s))
     inc = np.zeros((E, T, K), dtype=np.int64)
     w = np.zeros((E, T, K))
@@ -302,7 +290,7 @@ def _srm_findings(
                 f"SRM at {where}: shares {_fmt_share(current['observed_share'])}% vs designed "
                 f"{_fmt_share(current['expected_share'])}% (phase {phase_no}, n={current['n']:,}); "
                 f"e-value {_fmt_e(seq.log_e_final[i])} passed 1/alpha={1 / cfg.alpha:,.0f} at "
-                f"{crossed_at:%Y-%m-%d %H:%M} UTC; chi-square p={_fmt_p(p_comb)}"
+                f"{crossed_at:%Y-%m-%d %H:%M} UTC; chi-square p={fmt_p(p_comb)}"
             )
             out.append(Finding(e.id, "srm", source, "alert", summary, stats, phase_no,
                                critical=worst_dev >= cfg.srm_critical_deviation))
@@ -310,18 +298,18 @@ def _srm_findings(
             summary = (
                 f"possible SRM at {where}: the always-valid e-value reached the warn level {warn_e:,.0f} at "
                 f"{stats['warn_reached_at']:%Y-%m-%d %H:%M} UTC (now {_fmt_e(seq.log_e_final[i])}) but not yet the "
-                f"{1 / cfg.alpha:,.0f} an alert needs; chi-square p={_fmt_p(p_comb)} (one look, for information)"
+                f"{1 / cfg.alpha:,.0f} an alert needs; chi-square p={fmt_p(p_comb)} (one look, for information)"
             )
             out.append(Finding(e.id, "srm", source, "warn", summary, stats, phase_no))
         else:
             n_all = int(total_units.sum())
             note = ""
             if worst_p < cfg.alpha:
-                note = (f"; the one-look chi-square p={_fmt_p(worst_p)} is below alpha, but under hourly looks that "
+                note = (f"; the one-look chi-square p={fmt_p(worst_p)} is below alpha, but under hourly looks that "
                         f"happens to correct splits too, and the e-value has not reached the warn level {warn_e:,.0f}")
             summary = (
                 f"split as designed at {where} (n={n_all:,}, e-value {_fmt_e(seq.log_e_final[i])}, "
-                f"chi-square p={_fmt_p(p_comb)}){note}"
+                f"chi-square p={fmt_p(p_comb)}){note}"
             )
             out.append(Finding(e.id, "srm", source, "ok", summary, stats, phase_no))
     return out
@@ -406,8 +394,8 @@ def _freshness(e: Experiment, h: HourlyCounts | None, source: str, as_of: dateti
     gap = as_of - data_until
     gap_h = max(gap / HOUR, 0.0)
     # expected arrivals in the silent hours, from the same hours of the previous days
-    gap_start = hour_index(_ceil_hour(data_until))
-    first = hour_index(_floor_hour(start))
+    gap_start = hour_index(ceil_hour(data_until))
+    first = hour_index(floor_hour(start))
     days = cfg.freshness_baseline_days
     expected = 0.0
     for hh in range(gap_start, gap_start + math.ceil(gap_h)):

@@ -77,6 +77,7 @@ from monitor.stats.interference import independence_chi2, stratified_interaction
 from monitor.templates import Quoter, render
 from monitor.templates import naive_utc as _naive
 from monitor.warehouse import Warehouse
+from monitor.wording import fmt_p
 
 __all__ = ["CollisionPull", "collision_findings", "collision_params", "pull_collisions"]
 
@@ -181,10 +182,6 @@ def _assignment_context(cfg: Config, q: Quoter) -> dict[str, Any]:
             "a": {"unit": q.ident(a.unit), "experiment": q.ident(a.experiment), "variant": q.ident(a.variant),
                   "timestamp": q.ident(a.timestamp)},
             "parts": [], "ratio": False, "cuped": False, "firsts": None}
-
-
-def _fmt_p(p: float) -> str:
-    return f"{p:.2g}" if p >= 1e-300 else "<1e-300"
 
 
 def _oriented(frame: pd.DataFrame) -> pd.DataFrame:
@@ -363,7 +360,7 @@ def _findings(tests: list[dict[str, Any]], checks: CheckConfig) -> list[Finding]
                     f"assignments depend on those of {other.id!r}: among the {int(t['n']):,} units both experiments "
                     f"share, the variant in one predicts the variant in the other (chi-square={t['stats']['chi2']:,.0f}, "
                     f"df={t['stats']['df']}, Cramer's V={t['stats']['cramers_v']:.2f}, BH-adjusted "
-                    f"p={_fmt_p(t['p_adjusted'])}); likely a shared hash seed or bucketing bug. Each experiment's "
+                    f"p={fmt_p(t['p_adjusted'])}); likely a shared hash seed or bucketing bug. Each experiment's "
                     f"effect estimate now carries part of the other's: re-randomise one of them with an independent seed")
                 out.append(Finding(me.id, "collision", other.id, "alert", summary_text, stats))
             else:
@@ -375,7 +372,7 @@ def _findings(tests: list[dict[str, Any]], checks: CheckConfig) -> list[Finding]
                     f"{m.name}: the effect of this experiment depends on the variant of {other.id!r} "
                     f"(interaction {worst['interaction']:+.4g}{rel_txt}, SE {worst['se']:.2g}, Wald "
                     f"chi-square={t['stats']['wald']:.1f} on {t['stats']['df']} df, BH-adjusted "
-                    f"p={_fmt_p(t['p_adjusted'])}, {int(t['n']):,} shared units); the two together do what neither "
+                    f"p={fmt_p(t['p_adjusted'])}, {int(t['n']):,} shared units); the two together do what neither "
                     f"does alone: check the combination before shipping both")
                 out.append(Finding(me.id, "collision", f"{other.id}:{m.name}", "alert", summary_text, stats))
     for exp_id, s in summary.items():
@@ -384,10 +381,10 @@ def _findings(tests: list[dict[str, Any]], checks: CheckConfig) -> list[Finding]
         text = (f"assignments tested against {n_pairs} overlapping experiment(s) sharing "
                 f"{checks.collision_min_overlap:,}+ units: "
                 + (f"dependent on {', '.join(map(repr, flagged))} (see those findings)" if flagged else
-                   f"independent of all (smallest BH-adjusted p={_fmt_p(s['assignment_min_p_adjusted'])})"))
+                   f"independent of all (smallest BH-adjusted p={fmt_p(s['assignment_min_p_adjusted'])})"))
         if s["interaction_tests"]:
             text += (f"; {s['interaction_tests']} guardrail interaction test(s), smallest BH-adjusted "
-                     f"p={_fmt_p(s['interaction_min_p_adjusted'])}")
+                     f"p={fmt_p(s['interaction_min_p_adjusted'])}")
         out.append(Finding(exp_id, "collision", "pairs", "ok", text,
                            {"pairs": sorted(s["pairs"]), "dependent_pairs": flagged,
                             "assignment_min_p_adjusted": s["assignment_min_p_adjusted"],

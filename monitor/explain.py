@@ -50,6 +50,7 @@ from monitor.stats.diagnosis import (
     fold_small_slices,
     locate_onset,
 )
+from monitor.wording import ceil_hour, floor_hour, fmt_p
 
 __all__ = [
     "CAUSES",
@@ -457,27 +458,12 @@ def _fmt_t(t: datetime | None) -> str:
     return "-" if t is None else t.astimezone(timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
 
 
-def _fmt_p(p: float | None) -> str:
-    if p is None:
-        return "-"
-    return f"{p:.2g}" if p >= 1e-300 else "<1e-300"
-
-
 def _pct(x: float) -> str:
     return f"{100 * x:.1f}%"
 
 
 def _shares_text(shares: dict[str, float]) -> str:
     return "/".join(f"{100 * s:.1f}" for s in shares.values()) + "%"
-
-
-def _floor_hour(t: datetime) -> datetime:
-    return t.replace(minute=0, second=0, microsecond=0)
-
-
-def _ceil_hour(t: datetime) -> datetime:
-    f = _floor_hour(t)
-    return f if f == t else f + HOUR
 
 
 # ---------------------------------------------------------------------------
@@ -656,13 +642,13 @@ def _causes(ph_stages: Sequence[StageResult], transitions: Sequence[StageTransit
         g = next(i for i, s in enumerate(ph_stages) if s.stage == first_break)
         prev, here = ph_stages[g - 1], ph_stages[g]
         tr = transitions[g - 1]
-        ev = [f"the ratio is consistent with the design at stage {prev.stage} (p={_fmt_p(prev.p_value)}) "
-              f"but not at stage {here.stage} (p={_fmt_p(here.p_value)})"]
+        ev = [f"the ratio is consistent with the design at stage {prev.stage} (p={fmt_p(prev.p_value)}) "
+              f"but not at stage {here.stage} (p={fmt_p(here.p_value)})"]
         differential = tr.p_value is not None and tr.p_value < alpha
         if tr.nested:
             rates = ", ".join(f"{v} {_pct(r)}" for v, r in tr.drop_rate.items())
             ev.append(f"units dropped between {tr.from_stage} and {tr.to_stage}: {rates} "
-                      f"(equal drop rates: p={_fmt_p(tr.p_value)})")
+                      f"(equal drop rates: p={fmt_p(tr.p_value)})")
         out.append(Cause("analysis_filtering", 0.8 if differential else 0.5, here.stage, tuple(ev)))
         out.append(Cause("log_processing", 0.6 if differential else 0.4, here.stage, tuple(ev)))
         if conc is not None:
@@ -670,7 +656,7 @@ def _causes(ph_stages: Sequence[StageResult], transitions: Sequence[StageTransit
                              (f"the mismatch at {here.stage} is confined to "
                               + ", ".join(f"{conc.dimension}={v}" for v in conc.removal_set),)))
     else:
-        ev_stage = f"the ratio is already off at the first stage, {first.stage} (shares {_shares_text(first.shares)}, p={_fmt_p(first.p_value)})"
+        ev_stage = f"the ratio is already off at the first stage, {first.stage} (shares {_shares_text(first.shares)}, p={fmt_p(first.p_value)})"
         when = onset.from_start
         onset_ev = (f"no evidence the ratio was ever as designed: the onset band reaches the first hour "
                     f"({_fmt_t(onset.band_start)} .. {_fmt_t(onset.band_end)})" if when else
@@ -681,7 +667,7 @@ def _causes(ph_stages: Sequence[StageResult], transitions: Sequence[StageTransit
         if conc is not None:
             where = ", ".join(f"{conc.dimension}={v}" for v in conc.removal_set)
             conc_ev = (f"the mismatch is confined to {where}: the other values are consistent with the design "
-                       f"(p={_fmt_p(conc.remainder_p_value)}) and differ from {where} (p={_fmt_p(conc.contrast_p_value)})")
+                       f"(p={fmt_p(conc.remainder_p_value)}) and differ from {where} (p={fmt_p(conc.contrast_p_value)})")
             so = conc.slice_onset
             if so is not None and so.onset is not None and not so.from_start:
                 when = False
@@ -712,7 +698,7 @@ def _causes(ph_stages: Sequence[StageResult], transitions: Sequence[StageTransit
 def _statement(stages: Sequence[StageResult], transitions: Sequence[StageTransition], first_break: str | None,
                onset: OnsetSummary, conc: DimensionDiagnosis | None, phase: Phase) -> str:
     if first_break is None:
-        parts = ", ".join(f"{s.stage} p={_fmt_p(s.p_value)}" for s in stages)
+        parts = ", ".join(f"{s.stage} p={fmt_p(s.p_value)}" for s in stages)
         return f"no mismatch: the split matches the design at every stage ({parts})"
     g = next(i for i, s in enumerate(stages) if s.stage == first_break)
     if g > 0:
@@ -722,7 +708,7 @@ def _statement(stages: Sequence[StageResult], transitions: Sequence[StageTransit
             best = min(tr.drop_rate, key=lambda v: tr.drop_rate[v])
             return (f"the ratio is as designed at stage {stages[g - 1].stage} but breaks at stage {first_break}, which drops "
                     f"{_pct(tr.drop_rate[worst])} of {worst} units against {_pct(tr.drop_rate[best])} of {best} "
-                    f"(p={_fmt_p(tr.p_value)})")
+                    f"(p={fmt_p(tr.p_value)})")
         return f"the ratio is as designed at stage {stages[g - 1].stage} but breaks at stage {first_break}"
     if conc is not None:
         where = ", ".join(f"{conc.dimension}={v}" for v in conc.removal_set)
@@ -776,8 +762,8 @@ def diagnose_counts(
     if not stage_names:
         raise ConfigError("at least one stage is needed")
     as_of = as_of.astimezone(timezone.utc)
-    t0 = _floor_hour(exp.start)
-    n_hours = max(0, int((_ceil_hour(as_of) - t0) / HOUR))
+    t0 = floor_hour(exp.start)
+    n_hours = max(0, int((ceil_hour(as_of) - t0) / HOUR))
     combo_index: dict[str, int] = {}
     stage_rows = [_stage_rows(counts_by_source.get(s), exp, t0, n_hours, combo_index) for s in stage_names]
     combo_texts = sorted(combo_index, key=combo_index.get)  # type: ignore[arg-type]
@@ -1168,10 +1154,10 @@ def render_text(d: Diagnosis) -> str:
         lines.append("  stages")
         for s in p.stages:
             lines.append(f"    {s.stage:<14} n={sum(s.units.values()):>9,}  shares {_shares_text(s.shares):<14} "
-                         f"p={_fmt_p(s.p_value):<8} {'BROKEN' if s.broken else 'ok'}")
+                         f"p={fmt_p(s.p_value):<8} {'BROKEN' if s.broken else 'ok'}")
         for t in p.transitions:
             rates = " ".join(f"{v} {_pct(r)}" for v, r in t.drop_rate.items())
-            lines.append(f"    {t.from_stage} -> {t.to_stage}: dropped {rates}; equal drop rates p={_fmt_p(t.p_value)}"
+            lines.append(f"    {t.from_stage} -> {t.to_stage}: dropped {rates}; equal drop rates p={fmt_p(t.p_value)}"
                          + ("" if t.nested else " (counts not nested: not tested)"))
         o = p.onset
         lines.append(f"  time (stage {p.focus_stage})")
@@ -1192,18 +1178,18 @@ def render_text(d: Diagnosis) -> str:
         lines.append("  segments")
         for m in p.dimensions:
             top = sorted(m.slices, key=lambda s: -s.contribution)[:3]
-            tops = ", ".join(f"{s.value} {_shares_text(s.shares)} (Holm p={_fmt_p(s.p_holm)}, "
+            tops = ", ".join(f"{s.value} {_shares_text(s.shares)} (Holm p={fmt_p(s.p_holm)}, "
                              f"{s.contribution:,.1f} of chi2)" for s in top)
             verdict = ("concentrated in " + ", ".join(m.removal_set)) if m.concentrated else (
                 "spread" if m.pooled_p_value < d.alpha else "consistent")
             fold = f", {m.n_folded} folded into (other)" if m.n_folded else ""
-            lines.append(f"    {m.dimension} ({m.n_values} values{fold}): {verdict}; pooled p={_fmt_p(m.pooled_p_value)}; "
+            lines.append(f"    {m.dimension} ({m.n_values} values{fold}): {verdict}; pooled p={fmt_p(m.pooled_p_value)}; "
                          f"top {tops}")
         lines.append("  balance across variants")
         for m in p.dimensions:
             cell = (f"; largest residual {m.worst_cell[0]} x {m.worst_cell[1]} {m.worst_cell[2]:+.1f}"
                     if m.worst_cell else "")
-            lines.append(f"    {m.dimension}: chi2={m.balance_chi2:,.1f} df={m.balance_df} p={_fmt_p(m.balance_p_value)} "
+            lines.append(f"    {m.dimension}: chi2={m.balance_chi2:,.1f} df={m.balance_df} p={fmt_p(m.balance_p_value)} "
                          f"V={m.cramers_v:.3f}{cell}")
         if p.causes:
             lines.append("  likely causes")
@@ -1335,4 +1321,4 @@ def render_html(d: Diagnosis) -> str:
     env = jinja2.Environment(autoescape=True, undefined=jinja2.StrictUndefined)
     tpl = env.from_string(_HTML)
     charts = {p.phase: _charts(d, p) for p in d.phases}
-    return tpl.render(d=d, charts=charts, fmt_t=_fmt_t, fmt_p=_fmt_p, pct=_pct, shares=_shares_text)
+    return tpl.render(d=d, charts=charts, fmt_t=_fmt_t, fmt_p=fmt_p, pct=_pct, shares=_shares_text)

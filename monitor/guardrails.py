@@ -56,6 +56,7 @@ from monitor.stats import effects as fx
 from monitor.templates import Quoter, render
 from monitor.templates import naive_utc as _naive
 from monitor.warehouse import Warehouse
+from monitor.wording import ceil_hour, floor_hour, fmt_change, fmt_p
 
 __all__ = [
     "STAT_COLUMNS",
@@ -131,10 +132,6 @@ def render_metric_sql(metric: MetricConfig, assignments: SourceConfig, wh: Wareh
     ctx = metric_context(metric, assignments, Quoter(wh.dialect))
     ctx["firsts"] = firsts
     return render("metrics.sql.j2", wh.dialect, **ctx)
-
-
-def _floor_hour(t: datetime) -> datetime:
-    return t.replace(minute=0, second=0, microsecond=0)
 
 
 def metric_params(metric: MetricConfig, window_start: datetime, as_of: datetime,
@@ -214,7 +211,7 @@ def pull_metrics(cfg: Config, wh: Warehouse, experiments: Sequence[Experiment], 
     if not experiments:
         return [MetricPull(m, tidy_stat_frame(pd.DataFrame())) for m in cfg.metrics]
     ids = [e.id for e in experiments]
-    window_start = _floor_hour(min(e.start for e in experiments))
+    window_start = floor_hour(min(e.start for e in experiments))
     src = cfg.sources[0]
     firsts = first_relation(wh, src, ids, window_start, as_of)  # shared by every metric's query
     for m in cfg.metrics:
@@ -256,21 +253,12 @@ class GuardrailResult:
     snapshots: tuple[MetricSnapshot, ...]
 
 
-def _ceil_hour(t: datetime) -> datetime:
-    f = _floor_hour(t)
-    return f if f == t else f + _HOUR
-
-
 def _since(e: Experiment, as_of: datetime) -> datetime:
     ph = e.phase_at(as_of)
     if ph is None:
         started = [p for p in e.phases if p.start <= as_of]
         ph = started[-1] if started else e.phases[0]
-    return _ceil_hour(ph.start)
-
-
-def _pct(x: float | None, digits: int = 1) -> str:
-    return "n/a" if x is None else f"{100 * x:+.{digits}f}%"
+    return ceil_hour(ph.start)
 
 
 def _num(x: float) -> str:
@@ -285,12 +273,6 @@ def _fmt_e(e: float | None) -> str:
     if e < 1000:
         return f"{e:.2g}"
     return f"{e:,.0f}" if e < 1e6 else f"{e:.2g}"
-
-
-def _fmt_p(p: float | None) -> str:
-    if p is None:
-        return "n/a"
-    return f"{p:.2g}" if p >= 1e-300 else "<1e-300"
 
 
 @dataclass(frozen=True)
@@ -501,15 +483,15 @@ def _finding(s: dict[str, Any], adj: tuple[bool, float] | None, checks: CheckCon
                        f"{label}: {v} vs {e.control} cannot be judged on the relative scale: {why}{shown}", stats)
     level = f"{100 * (1 - alpha):g}%"
     if row["rel_cs_lower"] is not None:
-        cs = f"always-valid {level} CS {_pct(row['rel_cs_lower'])} to {_pct(row['rel_cs_upper'])}"
+        cs = f"always-valid {level} CS {fmt_change(row['rel_cs_lower'])} to {fmt_change(row['rel_cs_upper'])}"
         lo, up = row["rel_cs_lower"], row["rel_cs_upper"]
     else:  # judged on the difference, whose sign is the direction of the change
         cs = (f"no relative {level} CS yet: the {e.control} mean is not bounded away from 0; "
               f"always-valid CS of the difference {_num(row['cs_lower'])} to {_num(row['cs_upper'])}")
         lo, up = row["cs_lower"], row["cs_upper"]
-    tail = f"e-value {_fmt_e(row['e_value'])}; fixed-horizon p={_fmt_p(row['p_value'])}"
+    tail = f"e-value {_fmt_e(row['e_value'])}; fixed-horizon p={fmt_p(row['p_value'])}"
     means = f"{_num(row['mean_treatment'])} vs {_num(row['mean_control'])}"
-    head = f"{label}: {v} vs {e.control} {_pct(row['rel'])} ({means}; {cs})"
+    head = f"{label}: {v} vs {e.control} {fmt_change(row['rel'])} ({means}; {cs})"
     if vr is not None:
         tail += f"; CUPED variance reduction {100 * float(np.mean(vr[i])):.0f}%"
     if check == "metric":

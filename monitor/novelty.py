@@ -69,6 +69,7 @@ from monitor.stats import novelty as nv
 from monitor.templates import Quoter, render
 from monitor.templates import naive_utc as _naive
 from monitor.warehouse import Warehouse
+from monitor.wording import floor_hour, fmt_change, fmt_p
 
 __all__ = ["NoveltyPull", "novelty_findings", "novelty_metrics", "pull_novelty", "render_novelty_sql"]
 
@@ -104,10 +105,6 @@ def window(e: Experiment, as_of: datetime, every: int) -> tuple[datetime, dateti
     since = _ceil_day(ph.start)
     days = max((_floor_day(as_of) - since) // _DAY, 0)
     return since, since + _DAY * ((days // every) * every)
-
-
-def _floor_hour(t: datetime) -> datetime:
-    return t.replace(minute=0, second=0, microsecond=0)
 
 
 def _floor_day(t: datetime) -> datetime:
@@ -183,7 +180,7 @@ def pull_novelty(cfg: Config, wh: Warehouse, experiments: Sequence[Experiment], 
     metrics = novelty_metrics(cfg)
     # the same window start as every other query of the run (all live experiments), so
     # they can share the run's first-assignment relation (monitor.firsts)
-    window_start = _floor_hour(min(e.start for e in experiments)) if experiments else None
+    window_start = floor_hour(min(e.start for e in experiments)) if experiments else None
     windows = {e.id: window(e, as_of, cfg.checks.novelty_look_days) for e in experiments}
     experiments = [e for e in experiments if windows[e.id][0] < windows[e.id][1]]
     if not experiments:
@@ -432,14 +429,6 @@ def _calendar(m: MetricConfig, frame: pd.DataFrame, exps: list[Experiment], trea
 # ----------------------------------------------------------------------------- findings
 
 
-def _pct(x: float) -> str:
-    return f"{100 * x:+.1f}%"
-
-
-def _p(p: float) -> str:
-    return f"{p:.2g}" if p >= 1e-300 else "<1e-300"
-
-
 def novelty_findings(experiments: Sequence[Experiment], pulls: Sequence[NoveltyPull], as_of: datetime,
                      checks: CheckConfig) -> list[Finding]:
     """Findings for every eligible metric x live experiment x treatment variant.
@@ -561,7 +550,7 @@ def _finding(s: dict[str, Any], family: dict[str, int], checks: CheckConfig) -> 
                        f"{head}: {int(tr.k[i])} usable day(s) since first exposure, {checks.novelty_min_days} "
                        "needed to judge whether the effect changes with time", stats)
     last = max(a["age"] for a in per_age)
-    trend_txt = f"trend z={tr.z[i]:.1f}, p={_p(float(tr.p_value[i]))} vs threshold {threshold:.2g}"
+    trend_txt = f"trend z={tr.z[i]:.1f}, p={fmt_p(float(tr.p_value[i]))} vs threshold {threshold:.2g}"
     het = f"Q={tr.q[i]:.1f} on {int(tr.q_df[i])} df, I2={100 * tr.i2[i]:.0f}%"
     if float(tr.p_value[i]) >= threshold:
         stats["classification"] = "stable"
@@ -570,7 +559,7 @@ def _finding(s: dict[str, Any], family: dict[str, int], checks: CheckConfig) -> 
                               "upper": _rel(tr.pooled[i] + z * tr.pooled_se[i]), "stabilised_after_days": 0}
         return Finding(e.id, "novelty", s["scope"], "ok",
                        f"{head}: no change with days since first exposure over ages 0-{last} "
-                       f"({_pct(_rel(tr.pooled[i]))} pooled; {trend_txt}; {het})", stats)
+                       f"({fmt_change(_rel(tr.pooled[i]))} pooled; {trend_txt}; {het})", stats)
     start, end = float(tr.intercept[i]), float(tr.intercept[i] + tr.slope[i] * np.log1p(last))
     # fading: moves towards 0; growing: moves away from 0, or crosses it (the long-run interval
     # lies wholly on the other side of 0 from the early effect)
@@ -593,11 +582,11 @@ def _finding(s: dict[str, Any], family: dict[str, int], checks: CheckConfig) -> 
               else "the early average understates it; keep the experiment running until it settles")
     caveat = ""
     if cal is not None and cal["p_value"] < threshold:
-        caveat = (f"; early and late exposure cohorts differ at equal ages ({_pct(_rel(cal['difference']))}, "
-                  f"p={_p(cal['p_value'])}), so part of this may be calendar time rather than age")
-    summary = (f"{head} effect {what}: {_pct(_rel(cv.early[i]))} at day 0, converging to "
-               f"{_pct(_rel(cv.long_run[i]))} ({level} interval {_pct(_rel(cv.lower[i]))} to "
-               f"{_pct(_rel(cv.upper[i]))}), {when}; {advice} ({trend_txt}; {het}){caveat}")
+        caveat = (f"; early and late exposure cohorts differ at equal ages ({fmt_change(_rel(cal['difference']))}, "
+                  f"p={fmt_p(cal['p_value'])}), so part of this may be calendar time rather than age")
+    summary = (f"{head} effect {what}: {fmt_change(_rel(cv.early[i]))} at day 0, converging to "
+               f"{fmt_change(_rel(cv.long_run[i]))} ({level} interval {fmt_change(_rel(cv.lower[i]))} to "
+               f"{fmt_change(_rel(cv.upper[i]))}), {when}; {advice} ({trend_txt}; {het}){caveat}")
     return Finding(e.id, "novelty", s["scope"], "warn", summary, stats)
 
 

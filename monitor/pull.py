@@ -38,6 +38,7 @@ from monitor.state import StateStore
 from monitor.templates import Quoter, render, source_context
 from monitor.templates import naive_utc as _naive
 from monitor.warehouse import Warehouse
+from monitor.wording import floor_hour
 
 __all__ = ["PulledSource", "pull_sources", "render_source_sql"]
 
@@ -71,10 +72,6 @@ def render_source_sql(src: SourceConfig, wh: Warehouse, *, incremental: bool = F
     """
     return render("assignments.sql.j2", wh.dialect, incremental=incremental, leak_hours=leak_hours,
                   firsts=None if incremental else firsts, **source_context(src, Quoter(wh.dialect)))
-
-
-def _floor_hour(t: datetime) -> datetime:
-    return t.replace(minute=0, second=0, microsecond=0)
 
 
 def _tidy(raw: pd.DataFrame, segments: Sequence[str]) -> pd.DataFrame:
@@ -126,7 +123,7 @@ def pull_sources(
             out.append(PulledSource(src.name, as_of, empty, empty, (), True))
         return out
     ids = [e.id for e in experiments]
-    window_start = _floor_hour(min(e.start for e in experiments))
+    window_start = floor_hour(min(e.start for e in experiments))
     lookback = timedelta(hours=cfg.pull.lookback_hours)
     for position, src in enumerate(cfg.sources):
         marks = {} if full_refresh else state.watermarks(src.name)
@@ -134,7 +131,7 @@ def pull_sources(
         incremental = bool(marks) and not backtest
         if incremental:
             per_exp = [max(marks[e.id] - lookback, e.start) if e.id in marks else e.start for e in experiments]
-            since = max(window_start, _floor_hour(min(per_exp)))
+            since = max(window_start, floor_hour(min(per_exp)))
         else:
             since = window_start
         if on_query:

@@ -73,6 +73,7 @@ from monitor.stats.interference import effect_trend, ratio_change
 from monitor.templates import Quoter, render
 from monitor.templates import naive_utc as _naive
 from monitor.warehouse import Warehouse
+from monitor.wording import ceil_hour, fmt_change, fmt_p
 
 __all__ = ["SUM_COLUMNS", "SpilloverPull", "pull_spillover", "ramped", "spillover_findings"]
 
@@ -143,17 +144,12 @@ def _tidy(raw: pd.DataFrame) -> pd.DataFrame:
     return tidy_stat_frame(raw, SUM_COLUMNS)
 
 
-def _ceil_hour(t: datetime) -> datetime:
-    f = t.replace(minute=0, second=0, microsecond=0)
-    return f if f == t else f + _HOUR
-
-
 def _phase_of_hours(e: Experiment, hours: pd.Series) -> np.ndarray:
     """Phase number per first-assignment hour; 0 for an hour not wholly inside one phase."""
     out = np.zeros(len(hours), dtype=np.int64)
     h = hours.dt.tz_convert("UTC").dt.tz_localize(None).to_numpy().astype("datetime64[us]")
     for p in e.phases:
-        sel = h >= np.datetime64(_naive(_ceil_hour(p.start)), "us")
+        sel = h >= np.datetime64(_naive(ceil_hour(p.start)), "us")
         if p.end is not None:
             sel &= h + np.timedelta64(1, "h") <= np.datetime64(_naive(p.end), "us")
         out[sel] = p.number
@@ -168,14 +164,6 @@ def _stack(sums: pd.Series) -> tuple[float, np.ndarray, np.ndarray]:
         for j in range(i, 4):
             pr[i, j] = pr[j, i] = float(sums[f"s_{a}_{_VARS[j]}"])
     return n, s, pr
-
-
-def _fmt_pct(x: float | None) -> str:
-    return "n/a" if x is None else f"{100 * x:+.1f}%"
-
-
-def _fmt_p(p: float) -> str:
-    return f"{p:.2g}" if p >= 1e-300 else "<1e-300"
 
 
 def spillover_findings(experiments: Sequence[Experiment], pulls: Sequence[SpilloverPull], as_of: datetime,
@@ -291,22 +279,22 @@ def _bias_text(m: MetricConfig, eff: dict[str, Any] | None, drift: dict[str, Any
         lo, hi = eff["fitted_at_low"], eff["fitted_at_high"]
         shrinks = abs(hi) < abs(lo)
         parts.append(
-            f"the effect moves from {_fmt_pct(lo)} at {100 * eff['share_low']:.0f}% treatment to {_fmt_pct(hi)} at "
+            f"the effect moves from {fmt_change(lo)} at {100 * eff['share_low']:.0f}% treatment to {fmt_change(hi)} at "
             f"{100 * eff['share_high']:.0f}% ({'shrinking' if shrinks else 'growing'} as more units are treated)")
         direction = "overstated" if shrinks else "understated"
     if drift_sig and drift is not None:
         lo, hi = drift["fitted_at_low"], drift["fitted_at_high"]
-        parts.append(f"the control moved {_fmt_pct(lo)} against its own pre-period at {100 * drift['share_low']:.0f}% "
-                     f"treatment and {_fmt_pct(hi)} at {100 * drift['share_high']:.0f}%")
+        parts.append(f"the control moved {fmt_change(lo)} against its own pre-period at {100 * drift['share_low']:.0f}% "
+                     f"treatment and {fmt_change(hi)} at {100 * drift['share_high']:.0f}%")
         if direction == "unclear" and eff is not None:
             # control moving away from the treatment's side inflates the contrast; towards it deflates it
             toward = (hi - lo) * eff["pooled"] > 0
             direction = "understated" if toward else "overstated"
     if not drift_sig and drift is not None and abs(drift["pooled"]) > 3 * drift["pooled_se"] > 0:
         # not a trend with the share, but a level shift worth stating (it may also be selection at assignment)
-        parts.append(f"the control's own metric is {_fmt_pct(drift['pooled'])} against its pre-period (fitted "
-                     f"{_fmt_pct(drift['fitted_at_low'])} at {100 * drift['share_low']:.0f}% treatment, "
-                     f"{_fmt_pct(drift['fitted_at_high'])} at {100 * drift['share_high']:.0f}%)")
+        parts.append(f"the control's own metric is {fmt_change(drift['pooled'])} against its pre-period (fitted "
+                     f"{fmt_change(drift['fitted_at_low'])} at {100 * drift['share_low']:.0f}% treatment, "
+                     f"{fmt_change(drift['fitted_at_high'])} at {100 * drift['share_high']:.0f}%)")
     return direction, "; ".join(parts)
 
 
@@ -341,15 +329,15 @@ def _finding(s: dict[str, Any], family: int, checks: CheckConfig) -> Finding:
         bias = {"overstated": "the estimate at low treatment shares likely overstates the effect of a full rollout",
                 "understated": "the estimate likely understates the effect of a full rollout",
                 "unclear": "the direction of the bias is unclear"}[direction]
-        summary = (f"{label}: possible interference between the groups: {why} (Bonferroni-adjusted p={_fmt_p(p_min)}); "
+        summary = (f"{label}: possible interference between the groups: {why} (Bonferroni-adjusted p={fmt_p(p_min)}); "
                    f"{bias}. Treatment and control may share a limited resource or influence each other: "
                    f"consider randomising by cluster or region, or a switchback design, so the groups do not compete")
         return Finding(e.id, "spillover", s["scope"], "alert", summary, stats)
     bits = []
     if eff is not None:
-        bits.append(f"effect trend {_fmt_pct(eff['slope_per_share'])} per 100% share, p={_fmt_p(eff['p_value'])}")
+        bits.append(f"effect trend {fmt_change(eff['slope_per_share'])} per 100% share, p={fmt_p(eff['p_value'])}")
     if drift is not None:
-        bits.append(f"control drift trend {_fmt_pct(drift['slope_per_share'])} per 100% share, "
-                    f"p={_fmt_p(drift['p_value'])}, context only")
+        bits.append(f"control drift trend {fmt_change(drift['slope_per_share'])} per 100% share, "
+                    f"p={fmt_p(drift['p_value'])}, context only")
     return Finding(e.id, "spillover", s["scope"], "ok",
                    f"{label}: no change with the treatment share ({'; '.join(bits)})", stats)
