@@ -1,6 +1,6 @@
 """Small PNG charts for the digest (matplotlib, Agg canvas, no global pyplot state).
 
-Two charts per experiment:
+Two charts, each drawn only for an experiment whose finding it illustrates:
 
 * :func:`allocation_chart`: the cumulative share of each variant since the
   experiment started, against the cumulative share the design implies. With
@@ -8,27 +8,52 @@ Two charts per experiment:
   unit-weighted average of each hour's designed share,
   ``sum_h n_h w_h(v) / sum_h n_h``: exactly what the observed cumulative share
   should be if every phase ran as designed.
-* :func:`guardrail_chart`: each guardrail's relative effect over runs with its
-  always-valid confidence-sequence band.
+* :func:`guardrail_chart`: each guardrail's relative effect with its
+  always-valid confidence-sequence band: over the recorded runs when there are
+  several, else as one bar per guardrail at the latest run.
 
-Both return PNG bytes; inputs with nothing to draw return None.
+Both return a :class:`Chart` (PNG bytes and a text alternative that states what
+the chart shows in numbers); inputs with nothing to draw return None. A chart is
+meant to be shown :attr:`Chart.width` CSS pixels wide or narrower and is drawn
+at twice that many pixels, so it stays sharp on high-density screens; its
+smallest text is :data:`SMALLEST_FONT_PT` points at that width.
 """
 
 from __future__ import annotations
 
 import io
 from collections.abc import Sequence
-from datetime import datetime
+from dataclasses import dataclass
+from datetime import datetime, timedelta
 from typing import Any
 
 import numpy as np
 
 from monitor.errors import ConfigError
 
-__all__ = ["allocation_chart", "cumulative_shares", "guardrail_chart", "require_matplotlib"]
+__all__ = ["CSS_PX_PER_INCH", "Chart", "PIXEL_RATIO", "SMALLEST_FONT_PT", "allocation_chart", "cumulative_shares",
+           "guardrail_chart", "require_matplotlib"]
 
-_FIGSIZE = (5.2, 2.3)
-_DPI = 90
+CSS_PX_PER_INCH = 100
+"""Figure inches to CSS pixels at the chart's intended display width."""
+PIXEL_RATIO = 2
+"""PNG pixels per CSS pixel."""
+SMALLEST_FONT_PT = 10.0
+"""The smallest text in a chart (tick labels, legend), in points at the intended width."""
+_WIDTH_IN = 4.4
+_HEIGHT_IN = 2.7
+_LABEL_PT = 10.5
+_STATUS_COLOUR = {"alert": "#c62828", "warn": "#b26a00", "ok": "#1f5f99"}
+_STATUS_RANK = {"ok": 0, "warn": 1, "alert": 2}
+
+
+@dataclass(frozen=True)
+class Chart:
+    png: bytes
+    alt: str
+    """What the chart shows, in words and numbers, for readers who cannot see it."""
+    width: int
+    """Intended display width in CSS pixels (the PNG is :data:`PIXEL_RATIO` times wider)."""
 
 
 def require_matplotlib() -> None:
@@ -42,29 +67,51 @@ def require_matplotlib() -> None:
         raise ConfigError("charts need matplotlib, which is not installed: pip install 'expwatch[charts]'") from None
 
 
-def _figure() -> Any:
+def _figure(height_in: float = _HEIGHT_IN) -> Any:
     require_matplotlib()
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
-    fig = Figure(figsize=_FIGSIZE, dpi=_DPI)
+    fig = Figure(figsize=(_WIDTH_IN, height_in), dpi=CSS_PX_PER_INCH, layout="constrained")
     FigureCanvasAgg(fig)
-    fig.subplots_adjust(left=0.12, right=0.98, top=0.88, bottom=0.24)
     return fig
 
 
-def _dates(ax: Any) -> None:
+def _time_axis(ax: Any, times: Sequence[datetime]) -> None:
+    """Dates on x, limited to the data (a lone time gets an hour either side, never
+    matplotlib's default of years)."""
     from matplotlib.dates import AutoDateLocator, ConciseDateFormatter
 
-    loc = AutoDateLocator(minticks=3, maxticks=6)
+    lo, hi = min(times), max(times)
+    pad = max((hi - lo) * 0.02, timedelta(minutes=30))
+    ax.set_xlim(lo - pad, hi + pad)
+    loc = AutoDateLocator(minticks=3, maxticks=5)
     ax.xaxis.set_major_locator(loc)
     ax.xaxis.set_major_formatter(ConciseDateFormatter(loc))
 
 
-def _png(fig: Any) -> bytes:
+def _finish(fig: Any, ax: Any, alt: str) -> Chart:
+    ax.tick_params(labelsize=SMALLEST_FONT_PT)
+    ax.xaxis.get_offset_text().set_fontsize(SMALLEST_FONT_PT)
+    ax.grid(alpha=0.25)
     buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=_DPI)  # fixed margins: one draw, not two
-    return buf.getvalue()
+    fig.savefig(buf, format="png", dpi=CSS_PX_PER_INCH * PIXEL_RATIO)
+    return Chart(_smaller_png(buf.getvalue()), alt, round(_WIDTH_IN * CSS_PX_PER_INCH))
+
+
+def _smaller_png(png: bytes) -> bytes:
+    """The PNG as a 64-colour palette image (a third of the bytes; the charts have few colours)."""
+    from PIL import Image
+
+    with Image.open(io.BytesIO(png)) as im:
+        out = io.BytesIO()
+        im.convert("RGB").quantize(colors=64, method=Image.Quantize.MEDIANCUT, dither=Image.Dither.NONE).save(
+            out, format="PNG", optimize=True)
+    return out.getvalue()
+
+
+def _day(t: datetime) -> str:
+    return f"{t:%Y-%m-%d %H:%M} UTC"
 
 
 def cumulative_shares(units: np.ndarray, designed: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -106,9 +153,10 @@ def cumulative_shares(units: np.ndarray, designed: np.ndarray) -> tuple[np.ndarr
 
 
 def allocation_chart(hours: Sequence[datetime], units: np.ndarray, designed: np.ndarray,
-                     variants: Sequence[str], title: str) -> bytes | None:
-    """PNG of the cumulative share of every variant (solid) against the design
-    (dashed, same colour). None when there are no units."""
+                     variants: Sequence[str], subject: str) -> Chart | None:
+    """The cumulative share of every variant (solid) against the design (dashed,
+    same colour); ``subject`` (e.g. "x at stage assigned") opens the text
+    alternative. None when there are no units."""
     units = np.asarray(units, dtype=float)
     if units.size == 0 or units.sum() <= 0:
         return None
@@ -118,67 +166,98 @@ def allocation_chart(hours: Sequence[datetime], units: np.ndarray, designed: np.
     fig = _figure()
     ax = fig.subplots()
     for j, v in enumerate(variants):
-        line, = ax.plot(x, observed[first:, j], lw=1.6, label=str(v))
-        ax.plot(x, expected[first:, j], lw=1.0, ls="--", color=line.get_color())
-    ax.set_ylabel("cumulative share", fontsize=8)
-    fig.suptitle(title, x=0.01, ha="left", fontsize=9)
-    ax.tick_params(labelsize=7)
-    ax.legend(fontsize=7, ncol=min(len(variants), 4), loc="best", title="solid: observed, dashed: design",
-              title_fontsize=6)
-    ax.grid(alpha=0.25)
-    _dates(ax)
-    return _png(fig)
+        line, = ax.plot(x, 100 * observed[first:, j], lw=1.8, label=str(v))
+        ax.plot(x, 100 * expected[first:, j], lw=1.2, ls="--", color=line.get_color())
+    ax.set_ylabel("cumulative share, %", fontsize=_LABEL_PT)
+    ax.plot([], [], color="grey", lw=1.2, ls="--", label="design")
+    fig.legend(loc="outside lower center", ncol=min(len(variants) + 1, 4), fontsize=SMALLEST_FONT_PT, frameon=False)
+    _time_axis(ax, x)
+    shares = "; ".join(f"{v} {100 * observed[-1, j]:.1f}% (design {100 * expected[-1, j]:.1f}%)"
+                       for j, v in enumerate(variants))
+    alt = (f"Allocation of {subject}: cumulative share of each variant from {_day(x[0])} to {_day(x[-1])}, "
+           f"solid observed, dashed designed; at the end {shares}.")
+    return _finish(fig, ax, alt)
 
 
-def guardrail_chart(series: Sequence[dict[str, Any]], title: str) -> bytes | None:
-    """PNG of guardrail relative effects over runs with their confidence-sequence bands.
+def guardrail_chart(series: Sequence[dict[str, Any]], subject: str) -> Chart | None:
+    """Guardrail relative effects with their confidence-sequence bands.
 
     Parameters
     ----------
     series
         One dict per guardrail: ``label``, ``times`` (run times), ``effect``,
-        ``lower``, ``upper`` (relative, e.g. 0.03 = +3%); points whose effect or
-        bounds are None are left out.
-    title
-        Chart title.
+        ``lower``, ``upper`` (relative, e.g. 0.03 = +3%) and optionally
+        ``status`` (``ok``, ``warn`` or ``alert`` at the latest run); points
+        whose effect or bounds are None are left out.
+    subject
+        Opens the text alternative (e.g. the experiment id).
 
     Returns
     -------
-    bytes or None
+    Chart or None
         None when no series has a complete point.
+
+    Notes
+    -----
+    With one run time in all, each guardrail is one row: a dot for the effect
+    and a bar for its band. With several, each guardrail is a line over the
+    runs with its band shaded (a guardrail seen at one run only gets a dot and a
+    bar); the x axis spans the runs, lines are nudged apart by 1% of that span
+    so equal values stay visible, and the worst status is drawn on top in its
+    colour.
     """
     clean = []
     for s in series:
         pts = [(t, e, lo, hi) for t, e, lo, hi in zip(s["times"], s["effect"], s["lower"], s["upper"])
                if e is not None and lo is not None and hi is not None]
         if pts:
-            clean.append((str(s["label"]), pts))
+            clean.append((str(s["label"]), str(s.get("status", "ok")), pts))
     if not clean:
         return None
-    fig = _figure()
-    ax = fig.subplots()
-    if all(len(pts) == 1 for _, pts in clean):
-        # one run so far: a forest plot of the latest estimates is easier to read than dots on a time axis
-        fig.subplots_adjust(left=0.34)
-        y = np.arange(len(clean))[::-1]
-        eff = 100 * np.array([pts[0][1] for _, pts in clean])
-        lo = 100 * np.array([pts[0][2] for _, pts in clean])
-        hi = 100 * np.array([pts[0][3] for _, pts in clean])
-        ax.errorbar(eff, y, xerr=np.vstack([eff - lo, hi - eff]), fmt="o", ms=4, capsize=3, lw=1.4)
-        ax.set_yticks(y, [label for label, _ in clean], fontsize=7)
+    clean.sort(key=lambda c: _STATUS_RANK.get(c[1], 0))  # worst last: drawn on top
+    times = sorted({t for _, _, pts in clean for t, *_ in pts})
+    if len(times) == 1:
+        fig = _figure(0.9 + 0.55 * len(clean))
+        ax = fig.subplots()
+        from matplotlib.transforms import blended_transform_factory
+
+        label_at = blended_transform_factory(ax.transAxes, ax.transData)
+        for row, (label, status, pts) in enumerate(clean):
+            _, e, lo, hi = pts[-1]
+            colour = _STATUS_COLOUR.get(status, _STATUS_COLOUR["ok"])
+            ax.errorbar([100 * e], [row], xerr=[[100 * (e - lo)], [100 * (hi - e)]], fmt="o", ms=5, capsize=4,
+                        lw=2, color=colour)
+            ax.text(0.01, row + 0.22, label + ("" if status == "ok" else f" ({status})"), transform=label_at,
+                    fontsize=SMALLEST_FONT_PT, color=colour, va="bottom")
+        ax.set_yticks([])
+        ax.set_ylim(-0.5, len(clean) - 0.1)
         ax.axvline(0, color="grey", lw=0.8)
-        ax.set_xlabel("relative effect, % (bars: always-valid band)", fontsize=8)
-        ax.set_ylim(-0.7, len(clean) - 0.3)
+        ax.set_xlabel("relative effect, % (bar: always-valid band)", fontsize=_LABEL_PT)
     else:
-        for label, pts in clean:
-            t, e, lo, hi = zip(*pts)
-            line, = ax.plot(t, 100 * np.asarray(e), marker="o", ms=3, lw=1.4, label=label)
-            ax.fill_between(t, 100 * np.asarray(lo), 100 * np.asarray(hi), color=line.get_color(), alpha=0.18, lw=0)
+        fig = _figure()
+        ax = fig.subplots()
+        span = times[-1] - times[0]
+        k = len(clean)
+        for i, (label, status, pts) in enumerate(clean):
+            nudge = span * 0.01 * (i - (k - 1) / 2)
+            t = [p[0] + nudge for p in pts]
+            e, lo, hi = (100 * np.array([p[j] for p in pts], dtype=float) for j in (1, 2, 3))
+            colour = _STATUS_COLOUR.get(status) if status != "ok" else None
+            z = 3 + _STATUS_RANK.get(status, 0)
+            name = label + ("" if status == "ok" else f" ({status})")
+            if len(pts) == 1:
+                ax.errorbar(t, e, yerr=[e - lo, hi - e], fmt="o", ms=5, capsize=4, lw=2, color=colour, label=name,
+                            zorder=z)
+                continue
+            line, = ax.plot(t, e, marker="o", ms=3.5, lw=1.8 if status == "ok" else 2.4, color=colour, label=name,
+                            zorder=z)
+            ax.fill_between(t, lo, hi, color=line.get_color(), alpha=0.18, lw=0, zorder=z - 1)
         ax.axhline(0, color="grey", lw=0.8)
-        ax.set_ylabel("relative effect, %", fontsize=8)
-        ax.legend(fontsize=7, loc="best")
-        _dates(ax)
-    fig.suptitle(title, x=0.01, ha="left", fontsize=9)
-    ax.tick_params(labelsize=7)
-    ax.grid(alpha=0.25)
-    return _png(fig)
+        ax.set_ylabel("relative effect, %", fontsize=_LABEL_PT)
+        fig.legend(loc="outside lower center", ncol=1 if k > 2 else k, fontsize=SMALLEST_FONT_PT, frameon=False)
+        _time_axis(ax, times)
+    runs = "at the latest run" if len(times) == 1 else f"over {len(times)} runs from {_day(times[0])} to {_day(times[-1])}"
+    parts = "; ".join(f"{label} {100 * pts[-1][1]:+.1f}% (band {100 * pts[-1][2]:+.1f}% to {100 * pts[-1][3]:+.1f}%"
+                      f"{'' if status == 'ok' else ', ' + status})" for label, status, pts in reversed(clean))
+    alt = f"Guardrail effects of {subject} {runs}, relative to control with always-valid bands; latest: {parts}."
+    return _finish(fig, ax, alt)

@@ -500,14 +500,16 @@ def _digest(cfg: Config, args: argparse.Namespace, state: Any, err: Console) -> 
         return 0
     if args.force:
         raise ConfigError("--force: only with --send")
-    digest = build_digest(state.engine, experiments_meta=meta, subject_prefix=prefix, charts=bool(args.out))
+    digest = build_digest(state.engine, experiments_meta=meta, subject_prefix=prefix, charts=bool(args.out),
+                          image_budget=None)  # a file is not an e-mail: every chart
     if args.out:
         out = Path(args.out)
         try:
             out.write_text(digest.standalone_html(), encoding="utf-8")
         except OSError as exc:
             raise ConfigError(f"--out {out}: cannot be written ({exc.strerror})") from None
-        err.print(f"digest: wrote {out} ({len(digest.images)} charts)", highlight=False, soft_wrap=True)
+        n = len(digest.images)
+        err.print(f"digest: wrote {out} ({n} chart{'' if n == 1 else 's'})", highlight=False, soft_wrap=True)
     else:
         sys.stdout.write(digest.text if digest.text.endswith("\n") else digest.text + "\n")
     return 0

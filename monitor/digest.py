@@ -11,7 +11,11 @@ and "resolved" alerts runs from the previous digest (recorded by
 
 The e-mail (:func:`send_digest`) is ``multipart/alternative``: a plain-text part
 and a ``multipart/related`` part holding the HTML and its charts as inline PNG
-images referenced by Content-ID [1]_ [2]_.
+images referenced by Content-ID [1]_ [2]_, marked ``Auto-Submitted:
+auto-generated`` so that responders do not answer it [3]_. The stylesheet is
+inlined into ``style`` attributes (clients that drop the head's CSS show it
+styled); only an experiment that needs a look gets charts, the clear ones share
+one table.
 
 References
 ----------
@@ -19,6 +23,8 @@ References
    Part Two: Media Types", RFC 2046, 1996 (multipart/alternative).
 .. [2] E. Levinson, "The MIME Multipart/Related Content-type", RFC 2387, 1998;
    and "Content-ID and Message-ID Uniform Resource Locators", RFC 2392, 1998.
+.. [3] K. Moore, "Recommendations for Automatic Responses to Electronic Mail",
+   RFC 3834, 2004, section 5 (the Auto-Submitted header field).
 """
 
 from __future__ import annotations
@@ -36,7 +42,7 @@ from datetime import datetime, timedelta, timezone
 from email.message import EmailMessage
 from email.utils import formatdate, make_msgid
 from importlib import resources
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import jinja2
 import numpy as np
@@ -65,7 +71,10 @@ from monitor.outbox import (
 )
 from monitor.state import alerts, counts, findings, runs
 
-__all__ = ["Digest", "DigestAlert", "DigestSend", "ExperimentStatus", "build_digest", "digest_day", "mark_digest_sent",
+if TYPE_CHECKING:
+    from monitor.charts import Chart
+
+__all__ = ["Digest", "DigestAlert", "DigestChart", "DigestSend", "ExperimentStatus", "build_digest", "digest_day", "mark_digest_sent",
            "message_id_for", "open_alerts", "queue_digest", "retry_digest", "run_digest", "send_digest", "send_prepared"]
 
 log = logging.getLogger("monitor")
@@ -75,6 +84,10 @@ DECISION_SUPPORT = ("This digest is decision support, not a verdict. Before stop
                     "'expwatch explain' and 'expwatch sql' show where they come from.")
 _STATUS_RANK = {"ok": 0, "warn": 1, "alert": 2}
 _GUARDRAIL_RUNS = 30
+_GUARDRAILS_PER_CHART = 4
+IMAGE_BUDGET = 150_000
+"""PNG bytes the digest's charts may take together: with base64 (4/3) and the
+HTML, the e-mail stays under 300 KB. Charts past it are left out and counted."""
 
 
 @dataclass(frozen=True)
@@ -92,6 +105,17 @@ class DigestAlert:
 
 
 @dataclass(frozen=True)
+class DigestChart:
+    cid: str
+    """Content-ID (without angle brackets) of its PNG in :attr:`Digest.images`."""
+    caption: str
+    alt: str
+    """What the chart shows, in words and numbers (the ``alt`` text)."""
+    width: int
+    """Display width in CSS pixels (the PNG has twice as many)."""
+
+
+@dataclass(frozen=True)
 class ExperimentStatus:
     experiment: str
     title: str | None
@@ -102,8 +126,8 @@ class ExperimentStatus:
     """Check -> worst status across scopes."""
     findings: tuple[dict[str, Any], ...]
     """The non-ok findings: check, scope, status, severity, summary, muted."""
-    charts: tuple[str, ...] = ()
-    """Content-IDs of its charts in :attr:`Digest.images`."""
+    charts: tuple[DigestChart, ...] = ()
+    """Its charts (only an experiment that needs a look has any)."""
 
 
 @dataclass(frozen=True)
@@ -122,6 +146,8 @@ class Digest:
     ongoing: tuple[DigestAlert, ...] = ()
     resolved: tuple[DigestAlert, ...] = ()
     run_id: str | None = None
+    charts_left_out: int = 0
+    """Charts not attached because :data:`IMAGE_BUDGET` was spent."""
 
     def standalone_html(self) -> str:
         """The HTML with every ``cid:`` image replaced by a data URI, for a file or a browser."""
@@ -161,7 +187,7 @@ def open_alerts(state_engine: Engine, *, at: datetime | None = None) -> list[Dig
     return [_alert(r, muted) for r in rows]
 
 
-def _allocation_image(conn: sa.Connection, exp: str, srm: Any) -> bytes | None:
+def _allocation_image(conn: sa.Connection, exp: str, srm: Any) -> Chart | None:
     """Cumulative allocation chart from the stored hourly counts of the SRM finding's stage."""
     from monitor.charts import allocation_chart
 
@@ -194,7 +220,7 @@ def _allocation_image(conn: sa.Connection, exp: str, srm: Any) -> bytes | None:
         designed[np.asarray(in_phase)] = [float(p["expected_share"].get(v, 0.0)) for v in variants]
     units[designed.sum(axis=1) == 0] = 0.0  # hours outside every phase are not part of the test either
     return allocation_chart(list(hours.to_pydatetime()), units, designed, variants,
-                            f"{exp}: allocation at stage {srm['scope']}")
+                            f"{exp} at stage {srm['scope']}")
 
 
 def _ts(value: Any) -> pd.Timestamp:
@@ -202,7 +228,8 @@ def _ts(value: Any) -> pd.Timestamp:
     return t.tz_convert("UTC") if t.tzinfo is not None else t.tz_localize("UTC")
 
 
-def _guardrail_image(conn: sa.Connection, exp: str) -> bytes | None:
+def _guardrail_image(conn: sa.Connection, exp: str, latest: dict[str, str]) -> Chart | None:
+    """The effects over recent runs of the guardrails in ``latest`` (scope -> status at the latest run)."""
     from monitor.charts import guardrail_chart
 
     recent = [r[0] for r in conn.execute(sa.select(runs.c.run_id).where(runs.c.outcome == "ok")
@@ -211,22 +238,57 @@ def _guardrail_image(conn: sa.Connection, exp: str) -> bytes | None:
         return None
     rows = conn.execute(sa.select(findings.c.as_of, findings.c.scope, findings.c.statistics)
                         .where(findings.c.experiment == exp, findings.c.check_name == "guardrail",
-                               findings.c.run_id.in_(recent)).order_by(findings.c.as_of)).all()
+                               findings.c.scope.in_(list(latest)), findings.c.run_id.in_(recent))
+                        .order_by(findings.c.as_of)).all()
     if not rows:
         return None
-    series: dict[str, dict[str, list[Any]]] = {}
+    series: dict[str, dict[str, Any]] = {}
     for as_of, scope, text in rows:
         st = json.loads(text)
-        s = series.setdefault(scope, {"label": scope, "times": [], "effect": [], "lower": [], "upper": []})
+        s = series.setdefault(scope, {"label": scope, "status": latest[scope], "times": [], "effect": [], "lower": [],
+                                      "upper": []})
         s["times"].append(as_of)
         s["effect"].append(st.get("effect_relative"))
         s["lower"].append(st.get("cs_relative_lower"))
         s["upper"].append(st.get("cs_relative_upper"))
-    return guardrail_chart(list(series.values()), f"{exp}: guardrail effects (always-valid bands)")
+    return guardrail_chart(list(series.values()), exp)
+
+
+def _charts_for(conn: sa.Connection, exp: str, n: int, fs: list[Any], budget: list[int]) -> list[tuple[DigestChart, bytes]]:
+    """The charts of one experiment that needs a look: the allocation at its worst
+    failing SRM stage, and the failing guardrails (at most :data:`_GUARDRAILS_PER_CHART`,
+    worst first). ``budget`` is [PNG bytes left, charts left out]; a chart that
+    does not fit in the bytes left is counted as left out instead."""
+    bad = [f for f in fs if f["status"] != "ok"]
+    out: list[tuple[DigestChart, bytes]] = []
+    srm = max((f for f in bad if f["check_name"] == "srm"), key=lambda f: (_STATUS_RANK[f["status"]], int(f["severity"])),
+              default=None)
+    guards = sorted((f for f in bad if f["check_name"] == "guardrail"),
+                    key=lambda f: (-_STATUS_RANK[f["status"]], -int(f["severity"]), f["scope"]))
+    wanted = []
+    if srm is not None:
+        wanted.append((f"alloc-{n}@expwatch", f"Allocation at stage {srm['scope']}",
+                       lambda: _allocation_image(conn, exp, srm)))
+    if guards:
+        shown = {f["scope"]: f["status"] for f in guards[:_GUARDRAILS_PER_CHART]}
+        more = len(guards) - len(shown)
+        wanted.append((f"guard-{n}@expwatch", "Guardrails that need a look" + (f" ({more} more not drawn)" if more else ""),
+                       lambda: _guardrail_image(conn, exp, shown)))
+    for cid, caption, draw in wanted:
+        chart = draw()
+        if chart is None:
+            continue
+        if len(chart.png) > budget[0]:
+            budget[1] += 1
+            continue
+        budget[0] -= len(chart.png)
+        out.append((DigestChart(cid, caption, chart.alt, chart.width), chart.png))
+    return out
 
 
 def build_digest(state_engine: Engine, *, since: datetime | None = None, experiments_meta: Any = None,
-                 subject_prefix: str = "[expwatch]", charts: bool = True, now: datetime | None = None) -> Digest:
+                 subject_prefix: str = "[expwatch]", charts: bool = True, now: datetime | None = None,
+                 image_budget: int | None = IMAGE_BUDGET) -> Digest:
     """Build the digest from the state store.
 
     Parameters
@@ -245,6 +307,10 @@ def build_digest(state_engine: Engine, *, since: datetime | None = None, experim
         Draw the PNG charts (set False for a quick text-only digest).
     now
         Time at which mutes are evaluated (default the latest run's time).
+    image_budget
+        PNG bytes the charts may take together (default :data:`IMAGE_BUDGET`,
+        sized for an e-mail); charts past it are left out and counted in
+        :attr:`Digest.charts_left_out`. None: no limit.
 
     Returns
     -------
@@ -275,6 +341,7 @@ def build_digest(state_engine: Engine, *, since: datetime | None = None, experim
         resolved: list[DigestAlert] = []
         exps: list[ExperimentStatus] = []
         images: dict[str, bytes] = {}
+        budget = [image_budget if image_budget is not None else 1 << 62, 0]  # PNG bytes left, charts left out
         if last is not None:
             arows = conn.execute(sa.select(alerts).where(sa.or_(alerts.c.state == "open", alerts.c.resolved_at > since))
                                  .order_by(alerts.c.severity.desc(), alerts.c.max_severity.desc(), alerts.c.experiment,
@@ -301,21 +368,12 @@ def build_digest(state_engine: Engine, *, since: datetime | None = None, experim
                              "severity": SEVERITY_NAMES[int(f["severity"])], "summary": f["summary"],
                              "muted": next((m for m in muted if m.covers(e, f["check_name"])), None)}
                             for f in fs if f["status"] != "ok")
-                cids: list[str] = []
-                if charts:
-                    srm = next((f for f in fs if f["check_name"] == "srm"), None)
-                    png = _allocation_image(conn, e, srm)
-                    if png is not None:
-                        images[f"alloc-{n}@expwatch"] = png
-                        cids.append(f"alloc-{n}@expwatch")
-                    png = _guardrail_image(conn, e)
-                    if png is not None:
-                        images[f"guard-{n}@expwatch"] = png
-                        cids.append(f"guard-{n}@expwatch")
+                drawn = _charts_for(conn, e, n, fs, budget) if charts and bad else []
+                images.update((c.cid, png) for c, png in drawn)
                 meta = metas.get(e)
                 worst = max((f["status"] for f in fs), key=lambda s: _STATUS_RANK[s])
                 exps.append(ExperimentStatus(e, meta.title if meta else None, meta.owner if meta else None, worst,
-                                             checks, bad, tuple(cids)))
+                                             checks, bad, tuple(c for c, _ in drawn)))
     check_names = sorted({c for x in exps for c in x.checks}, key=lambda c: (_check_order(c), c))
     n_bad = sum(1 for x in exps if x.status != "ok")
     if as_of is None:
@@ -328,11 +386,21 @@ def build_digest(state_engine: Engine, *, since: datetime | None = None, experim
     ctx = {"cost": _run_cost(state_engine, last["run_id"]) if last else None,
            "as_of": as_of, "since": since, "experiments": exps, "checks": check_names, "new": new, "ongoing": ongoing,
            "resolved": resolved, "headline": headline, "decision_support": DECISION_SUPPORT,
-           "run_id": last["run_id"] if last else None}
-    html = _template("digest.html.j2", True).render(**ctx)
+           "run_id": last["run_id"] if last else None, "charts_left_out": budget[1],
+           "needs_look": [x for x in exps if x.status != "ok"], "clear": [x for x in exps if x.status == "ok"]}
+    html = _inline_css(_template("digest.html.j2", True).render(**ctx))
     text = _template("digest.txt.j2", False).render(**ctx)
     return Digest(subject, text, html, images, as_of, since, tuple(exps), tuple(new), tuple(ongoing), tuple(resolved),
-                  last["run_id"] if last else None)
+                  last["run_id"] if last else None, budget[1])
+
+
+def _inline_css(html: str) -> str:
+    """The template's stylesheet copied into ``style`` attributes, so mail clients
+    that drop ``<style>`` in the head still show the digest styled; only the
+    ``@media`` rules (which cannot be inline) stay in the head."""
+    import css_inline
+
+    return css_inline.CSSInliner(keep_at_rules=True, load_remote_stylesheets=False).inline(html)
 
 
 def _run_cost(state_engine: Engine, run_id: str) -> str | None:
@@ -381,6 +449,7 @@ def to_email(digest: Digest, email_cfg: EmailConfig, *, message_id: str | None =
     msg["To"] = ", ".join(email_cfg.recipients)
     msg["Date"] = formatdate(localtime=False, usegmt=True)
     msg["Message-ID"] = message_id or make_msgid(domain=email_cfg.sender.split("@", 1)[1] or None)
+    msg["Auto-Submitted"] = "auto-generated"  # [3]: no out-of-office replies to it
     msg.set_content(digest.text, subtype="plain", charset="utf-8")
     msg.add_alternative(digest.html, subtype="html", charset="utf-8")
     html_part = msg.get_payload()[1]
