@@ -160,3 +160,22 @@ def test_collision_guardrail_interaction():
     f = next(f for f in fs if f.key == "a\x1fcollision\x1fb:errors")
     (c,) = f.statistics["contrasts"]
     assert c["interaction"] == pytest.approx(0.3, abs=0.12) and f.statistics["df"] == 1
+
+
+def test_run_table_names_a_pair_finding_on_both_experiments_lines():
+    """The pair finding lives under one experiment; the run table's line of the other says
+    where it is, so its owner does not read 'all clear'."""
+    import io
+
+    from rich.console import Console
+
+    from monitor.cycle import CycleResult
+    from monitor.report import print_text
+
+    exps = [_flat("a"), _flat("b"), _flat("c")]
+    fs = collision_findings(exps, CollisionPull(_crosstab("a", "b", 5000, 0.2, 1), ()), CHECKS)
+    buf = io.StringIO()
+    print_text(CycleResult("r", T0 + timedelta(days=3), exps, fs, [], []), Console(file=buf, width=200))
+    rows = {ln.split()[0]: ln for ln in buf.getvalue().splitlines() if ln.strip()}
+    assert "ALERT collision·b" in rows["a"] and "(under" not in rows["a"]
+    assert "ALERT collision·a (under a)" in rows["b"] and "all clear" in rows["c"]
