@@ -42,10 +42,14 @@ phases x variants). With hundreds of live experiments and units in a handful of
 them each, that is a few times the assignment rows; the guardrails add one
 scan of each event table and one join on the unit id.
 
-Findings: an ``alert`` per experiment of a pair with dependent assignments
-(scope: the other experiment's id) or an interaction on a guardrail (scope:
-``<other experiment>:<metric>``), and one ``ok`` finding per tested experiment
-(scope ``pairs``) that summarises the pairs tested. The tests are fixed-horizon
+Findings: one ``alert`` per pair with dependent assignments (scope: the other
+experiment's id) or an interaction on a guardrail (scope: ``<other
+experiment>:<metric>``), reported once, under the experiment of the pair whose
+id sorts first: a pair problem is one problem, so it is one alert episode, not
+two that open and close together. Notifications route it to both experiments'
+owners (:func:`monitor.outbox.enqueue`), and the other experiment's
+``pairs`` finding names it. One ``ok`` finding per tested experiment (scope
+``pairs``) summarises the pairs tested. The tests are fixed-horizon
 and re-run every cycle, so the level is kept strict. Decision support: confirm
 with the owners before acting.
 
@@ -343,38 +347,46 @@ def _findings(tests: list[dict[str, Any]], checks: CheckConfig) -> list[Finding]
         stats = {**t["stats"], "experiment_a": A.id, "experiment_b": B.id, "alpha": checks.collision_alpha,
                  "multiplicity": "bh", "family_size": t.get("family_size", 1), "p_adjusted": t.get("p_adjusted", 1.0),
                  "min_overlap": checks.collision_min_overlap}
-        for me, other in ((A, B), (B, A)):
-            s = summary.setdefault(me.id, {"pairs": set(), "assignment_min_p_adjusted": 1.0,
-                                           "interaction_min_p_adjusted": 1.0, "interaction_tests": 0,
-                                           "flagged": set()})
-            s["pairs"].add(other.id)
+        # one pair problem, one finding: on the side whose id sorts first, naming the other
+        # (its owner is notified too: monitor.outbox routes a collision event to both experiments)
+        me, other = (A, B) if A.id <= B.id else (B, A)
+        for x, y in ((A, B), (B, A)):
+            s = summary.setdefault(x.id, {"pairs": set(), "assignment_min_p_adjusted": 1.0,
+                                          "interaction_min_p_adjusted": 1.0, "interaction_tests": 0,
+                                          "flagged": set(), "reported_under": set()})
+            s["pairs"].add(y.id)
             key = f"{t['kind']}_min_p_adjusted"
             s[key] = min(s[key], t.get("p_adjusted", 1.0))
             if t["kind"] == "interaction":
                 s["interaction_tests"] += 1
-            if not t.get("rejected"):
-                continue
-            if t["kind"] == "assignment":
-                s["flagged"].add(other.id)
-                summary_text = (
-                    f"assignments depend on those of {other.id!r}: among the {int(t['n']):,} units both experiments "
-                    f"share, the variant in one predicts the variant in the other (chi-square={t['stats']['chi2']:,.0f}, "
-                    f"df={t['stats']['df']}, Cramer's V={t['stats']['cramers_v']:.2f}, BH-adjusted "
-                    f"p={fmt_p(t['p_adjusted'])}); likely a shared hash seed or bucketing bug. Each experiment's "
-                    f"effect estimate now carries part of the other's: re-randomise one of them with an independent seed")
-                out.append(Finding(me.id, "collision", other.id, "alert", summary_text, stats))
-            else:
-                m = t["metric"]
-                worst = max(t["stats"]["contrasts"], key=lambda c: abs(c["interaction"] / c["se"]) if c["se"] else 0)
-                rel = worst["interaction_relative"]
-                rel_txt = f" ({100 * rel:+.1f}% of the control x control mean)" if rel is not None else ""
-                summary_text = (
-                    f"{m.name}: the effect of this experiment depends on the variant of {other.id!r} "
-                    f"(interaction {worst['interaction']:+.4g}{rel_txt}, SE {worst['se']:.2g}, Wald "
-                    f"chi-square={t['stats']['wald']:.1f} on {t['stats']['df']} df, BH-adjusted "
-                    f"p={fmt_p(t['p_adjusted'])}, {int(t['n']):,} shared units); the two together do what neither "
-                    f"does alone: check the combination before shipping both")
-                out.append(Finding(me.id, "collision", f"{other.id}:{m.name}", "alert", summary_text, stats))
+            if t.get("rejected"):
+                if t["kind"] == "assignment":
+                    s["flagged"].add(y.id)
+                if x is other:
+                    scope = f"{other.id}:{t['metric'].name}" if t["kind"] == "interaction" else other.id
+                    s["reported_under"].add(f"{me.id} · collision · {scope}")
+        if not t.get("rejected"):
+            continue
+        if t["kind"] == "assignment":
+            summary_text = (
+                f"assignments depend on those of {other.id!r}: among the {int(t['n']):,} units both experiments "
+                f"share, the variant in one predicts the variant in the other (chi-square={t['stats']['chi2']:,.0f}, "
+                f"df={t['stats']['df']}, Cramer's V={t['stats']['cramers_v']:.2f}, BH-adjusted "
+                f"p={fmt_p(t['p_adjusted'])}); likely a shared hash seed or bucketing bug. Each experiment's "
+                f"effect estimate now carries part of the other's: re-randomise one of them with an independent seed")
+            out.append(Finding(me.id, "collision", other.id, "alert", summary_text, stats))
+        else:
+            m = t["metric"]
+            worst = max(t["stats"]["contrasts"], key=lambda c: abs(c["interaction"] / c["se"]) if c["se"] else 0)
+            rel = worst["interaction_relative"]
+            rel_txt = f" ({100 * rel:+.1f}% of the control x control mean)" if rel is not None else ""
+            summary_text = (
+                f"{m.name}: the effect of this experiment depends on the variant of {other.id!r} "
+                f"(interaction {worst['interaction']:+.4g}{rel_txt}, SE {worst['se']:.2g}, Wald "
+                f"chi-square={t['stats']['wald']:.1f} on {t['stats']['df']} df, BH-adjusted "
+                f"p={fmt_p(t['p_adjusted'])}, {int(t['n']):,} shared units); the two together do what neither "
+                f"does alone: check the combination before shipping both")
+            out.append(Finding(me.id, "collision", f"{other.id}:{m.name}", "alert", summary_text, stats))
     for exp_id, s in summary.items():
         n_pairs = len(s["pairs"])
         flagged = sorted(s["flagged"])
@@ -385,10 +397,14 @@ def _findings(tests: list[dict[str, Any]], checks: CheckConfig) -> list[Finding]
         if s["interaction_tests"]:
             text += (f"; {s['interaction_tests']} guardrail interaction test(s), smallest BH-adjusted "
                      f"p={fmt_p(s['interaction_min_p_adjusted'])}")
+        if s["reported_under"]:
+            text += ("; a pair finding is reported once, under the experiment whose id sorts first, and both "
+                     "owners are notified: see " + ", ".join(sorted(s["reported_under"])))
         out.append(Finding(exp_id, "collision", "pairs", "ok", text,
                            {"pairs": sorted(s["pairs"]), "dependent_pairs": flagged,
                             "assignment_min_p_adjusted": s["assignment_min_p_adjusted"],
                             "interaction_min_p_adjusted": s["interaction_min_p_adjusted"],
                             "interaction_tests": s["interaction_tests"], "alpha": checks.collision_alpha,
+                            "reported_under": sorted(s["reported_under"]),
                             "min_overlap": checks.collision_min_overlap}))
     return out

@@ -102,6 +102,9 @@ class DigestAlert:
     opened_at: datetime
     resolved_at: datetime | None
     muted: Mute | None = None
+    clear_since: datetime | None = None
+    """When the check went ok again, for an episode that is ``clearing``: it closes once
+    clear for ``checks.episode_clear_hours`` and continues if the check fails before."""
 
 
 @dataclass(frozen=True)
@@ -173,7 +176,8 @@ def _latest_run(conn: sa.Connection) -> dict[str, Any] | None:
 def _alert(r: Any, muted: list[Mute]) -> DigestAlert:
     m = next((m for m in muted if m.covers(r["experiment"], r["check_name"])), None)
     return DigestAlert(r["experiment"], r["check_name"], r["scope"], SEVERITY_NAMES[int(r["severity"])],
-                       SEVERITY_NAMES[int(r["max_severity"])], r["summary"], r["opened_at"], r["resolved_at"], m)
+                       SEVERITY_NAMES[int(r["max_severity"])], r["summary"], r["opened_at"], r["resolved_at"], m,
+                       r["updated_at"] if r["state"] == "clearing" else None)
 
 
 def open_alerts(state_engine: Engine, *, at: datetime | None = None) -> list[DigestAlert]:
@@ -320,7 +324,9 @@ def build_digest(state_engine: Engine, *, since: datetime | None = None, experim
     -----
     With no recorded run, the digest says so and lists nothing. New alerts are
     the open alerts opened after ``since``; resolved ones are those resolved
-    after it (whenever they opened); ongoing ones are open since before it. A
+    after it (whenever they opened); ongoing ones are open since before it. Open
+    includes ``clearing`` episodes (ok again, not yet for ``checks.episode_clear_hours``),
+    listed with ``clear_since``. A
     muted alert is listed and marked, never hidden. Experiments are ordered worst
     first, then by id; their chart Content-IDs are ``alloc-<n>@expwatch`` and
     ``guard-<n>@expwatch``.
@@ -343,12 +349,13 @@ def build_digest(state_engine: Engine, *, since: datetime | None = None, experim
         images: dict[str, bytes] = {}
         budget = [image_budget if image_budget is not None else 1 << 62, 0]  # PNG bytes left, charts left out
         if last is not None:
-            arows = conn.execute(sa.select(alerts).where(sa.or_(alerts.c.state == "open", alerts.c.resolved_at > since))
+            arows = conn.execute(sa.select(alerts).where(sa.or_(alerts.c.state.in_(("open", "clearing")),
+                                                                alerts.c.resolved_at > since))
                                  .order_by(alerts.c.severity.desc(), alerts.c.max_severity.desc(), alerts.c.experiment,
                                            alerts.c.check_name, alerts.c.scope)).mappings().all()
             for r in arows:
                 a = _alert(r, muted)
-                if r["state"] == "open":
+                if r["state"] in ("open", "clearing"):
                     (new if r["opened_at"] > since else ongoing).append(a)
                 elif r["resolved_at"] is not None and r["resolved_at"] > since:
                     resolved.append(a)

@@ -15,7 +15,7 @@ import tempfile
 from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from contextvars import ContextVar
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any
@@ -256,12 +256,17 @@ class StatusReport:
         ``finished_at`` of the latest run with outcome ``ok``.
     store_exists : bool
         False when the state store has never been written (no run yet).
+    clearing_alerts : dict of str to int
+        Episodes whose check is ok again but which have not yet stayed clear for
+        ``checks.episode_clear_hours`` (state ``clearing``), counted by check; not
+        counted in ``open_alerts``.
     """
 
     runs: tuple[RunSummary, ...]
     open_alerts: dict[tuple[str, str], int]
     last_success: datetime | None
     store_exists: bool
+    clearing_alerts: dict[str, int] = field(default_factory=dict)
 
     @property
     def open_total(self) -> int:
@@ -315,6 +320,8 @@ def read_status(state_url: str, limit: int = 10) -> StatusReport:
             last_ok = c.execute(sa.select(sa.func.max(runs.c.finished_at)).where(runs.c.outcome == "ok")).scalar()
             grouped = c.execute(sa.select(alerts.c.check_name, alerts.c.severity, sa.func.count())
                                 .where(alerts.c.state == "open").group_by(alerts.c.check_name, alerts.c.severity)).all()
+            clearing = dict(c.execute(sa.select(alerts.c.check_name, sa.func.count())
+                                      .where(alerts.c.state == "clearing").group_by(alerts.c.check_name)).all())
     finally:
         store.dispose()
     if isinstance(last_ok, str):
@@ -335,7 +342,7 @@ def read_status(state_url: str, limit: int = 10) -> StatusReport:
     for check, sev, n in grouped:
         key = (str(check), SEVERITY_NAMES.get(int(sev), str(sev)))
         open_by[key] = open_by.get(key, 0) + int(n)
-    return StatusReport(tuple(summaries), dict(sorted(open_by.items())), last_ok, True)
+    return StatusReport(tuple(summaries), dict(sorted(open_by.items())), last_ok, True, {str(k): int(v) for k, v in clearing.items()})
 
 
 def _cost_totals(conn: sa.Connection, table: sa.Table, run_ids: list[str]) -> dict[str, tuple[int, int | None, int | None]]:
@@ -371,6 +378,8 @@ def render_status_text(report: StatusReport) -> str:
     lines = [f"last successful run finished {_fmt(report.last_success)}; open alerts: {report.open_total}"]
     for (check, sev), n in report.open_alerts.items():
         lines.append(f"  {check:<16} {sev:<9} {n}")
+    for check, n in sorted(report.clearing_alerts.items()):
+        lines.append(f"  {check:<16} {'clearing':<9} {n}")
     lines.append("")
     lines.append(f"{'started (UTC)':<17}  {'as of (UTC)':<17}  {'outcome':<8}  {'seconds':>8}  {'exps':>5}  {'findings':>8}  "
                  f"{'returned':>8}  {'scanned':>8}  {'bytes':>8}  run id")
@@ -393,6 +402,8 @@ def status_to_json(report: StatusReport) -> dict[str, Any]:
         "last_success": _iso(report.last_success),
         "open_alerts": report.open_total,
         "open_alerts_by": [{"check": c, "severity": s, "count": n} for (c, s), n in report.open_alerts.items()],
+        "clearing_alerts": sum(report.clearing_alerts.values()),
+        "clearing_alerts_by": [{"check": c, "count": n} for c, n in sorted(report.clearing_alerts.items())],
         "runs": [{"run_id": r.run_id, "started_at": _iso(r.started_at), "finished_at": _iso(r.finished_at),
                   "as_of": _iso(r.as_of), "outcome": r.outcome, "seconds": None if r.seconds is None else round(r.seconds, 4),
                   "experiments": r.experiments, "findings": r.findings, "rows_returned": r.rows_returned,
@@ -464,6 +475,9 @@ def metrics_text(report: StatusReport, *, last_attempt_ok: bool | None = None, c
             counts.setdefault((c, s), 0)
     gauge("expwatch_open_alerts", "Open alerts by check and severity.",
           [({"check": c, "severity": s}, float(n)) for (c, s), n in sorted(counts.items())])
+    clearing = {c: report.clearing_alerts.get(c, 0) for c in set(checks) | set(report.clearing_alerts)}
+    gauge("expwatch_clearing_alerts", "Episodes clear again but not yet for checks.episode_clear_hours, by check.",
+          [({"check": c}, float(n)) for c, n in sorted(clearing.items())])
     if last_attempt_ok is not None:
         gauge("expwatch_last_attempt_success", "1 if the latest cycle attempt succeeded, else 0.",
               [({}, 1.0 if last_attempt_ok else 0.0)])

@@ -296,7 +296,9 @@ def enqueue(conn: Connection, run_id: str, as_of: datetime, events: Sequence[Any
     (so a warn-only alert that was never pushed does not push its resolution).
     ``changed`` events are recorded by the ledger but never pushed. Muted
     (experiment, check) pairs are skipped. A destination whose route matches none
-    of the events gets no message. Re-enqueueing the same run gives the same keys
+    of the events gets no message. A ``collision`` pair finding is reported under one
+    experiment of the pair; its route matches if it matches either experiment, so
+    both owners hear of it (each event lists ``experiments``). Re-enqueueing the same run gives the same keys
     and writes nothing. Missing notification tables are created in the same
     transaction.
     """
@@ -329,8 +331,8 @@ def enqueue(conn: Connection, run_id: str, as_of: datetime, events: Sequence[Any
     metas = _metas(experiments_meta)
     written: list[str] = []
     for hook in cfg_notify.webhooks:
-        mine = [e for e in keep if hook.route.matches(e.experiment, metas.get(e.experiment, ExperimentMeta()).owner,
-                                                      metas.get(e.experiment, ExperimentMeta()).tags)]
+        mine = [e for e in keep if any(hook.route.matches(x, metas.get(x, ExperimentMeta()).owner,
+                                                          metas.get(x, ExperimentMeta()).tags) for x in _concerns(e))]
         if not mine:
             continue
         mine.sort(key=lambda e: (-e.severity if e.kind != "resolved" else 1, e.experiment, e.check, e.scope))
@@ -346,11 +348,18 @@ def enqueue(conn: Connection, run_id: str, as_of: datetime, events: Sequence[Any
                         "title": metas.get(e.experiment, ExperimentMeta()).title,
                         "owner": metas.get(e.experiment, ExperimentMeta()).owner,
                         "check": e.check, "scope": e.scope, "severity": SEVERITY_NAMES[e.severity],
-                        "summary": e.summary} for e in mine],
+                        "summary": e.summary, "experiments": list(_concerns(e))} for e in mine],
         }
         _insert(conn, key, hook.name, message, as_of)
         written.append(key)
     return written
+
+
+def _concerns(ev: Any) -> tuple[str, ...]:
+    """The experiments an event is about: its own, and for a ``collision`` pair finding
+    (reported once, under one experiment of the pair) the other one named by its scope."""
+    other = ev.scope.split(":", 1)[0] if ev.check == "collision" and ev.scope != "pairs" else None
+    return (ev.experiment,) if other in (None, ev.experiment) else (ev.experiment, other)
 
 
 def _insert(conn: Connection, key: str, destination: str, message: dict[str, Any], at: datetime) -> None:

@@ -102,9 +102,15 @@ def print_text(result: CycleResult, console: Console) -> None:
 
 def _print_text(result: CycleResult, console: Console) -> None:
     by_exp: dict[str, list[Any]] = defaultdict(list)
+    # a collision pair finding is reported under one experiment of the pair; the other's line names it too
+    pair_of: dict[str, list[Text]] = defaultdict(list)
     for f in result.findings:
         if f.status != "ok":
             by_exp[f.experiment].append(f)
+            if f.check == "collision" and f.scope != "pairs":
+                other, _, metric = f.scope.partition(":")
+                pair_of[other].append(Text.assemble(_label(f.severity), f" collision·{f.experiment}"
+                                                    f"{':' + metric if metric else ''} (under {f.experiment})"))
     table = Table(title=f"expwatch · {len(result.experiments)} live experiments · as of {result.as_of:%Y-%m-%d %H:%M} UTC",
                   title_justify="left", show_edge=False, pad_edge=False, box=None)
     table.add_column("experiment", no_wrap=True)
@@ -115,8 +121,8 @@ def _print_text(result: CycleResult, console: Console) -> None:
     for e in result.experiments:
         entry = entries[e.id]
         found = sorted(by_exp.get(e.id, []), key=lambda f: (-f.severity, f.check, f.scope))
-        if found:
-            cell = Text(", ").join(Text.assemble(_label(f.severity), " ", _where(f)) for f in found)
+        if found or pair_of.get(e.id):
+            cell = Text(", ").join([Text.assemble(_label(f.severity), " ", _where(f)) for f in found] + pair_of.get(e.id, []))
         else:
             cell = Text("all clear", style="green")
         table.add_row(e.id, str(entry["phase"] or "-"), f"{sum(entry['units'].values()):,}", cell)

@@ -540,3 +540,28 @@ def test_cli_digest_alerts_mute_unmute(store, tmp_path, capsys):
     assert main(["mute", "ramped", "--config", cfg, "--until", "2001-01-01", "--reason", "x"]) == 2
     assert main(["unmute", "ramped", "--config", cfg, "--check", "leakage"]) == 0
     assert main(["unmute", "ramped", "--config", cfg]) == 2
+
+
+def _record_clearing(store, i, status):
+    """Run ``i`` hours after T with the ledger's 24 h clear span; returns the event kinds."""
+    at = T + timedelta(hours=i)
+    with store.transaction() as conn:
+        found = [srm(MARKUP, status, EVEN)]
+        ev = ledger.plan(store.open_alerts(conn), found, [MARKUP], as_of=at, clear_for=timedelta(hours=24))
+        ledger.apply(conn, f"run-{i}", at, found, ev)
+        StateStore.record_run(conn, f"run-{i}", at, at, "ok", {})
+    return [e.kind for e in ev]
+
+
+def test_clearing_episode_is_listed_with_the_time_it_went_clear(store):
+    """An episode whose check is ok again but not yet for the clear span (ledger state
+    ``clearing``) is still in progress: the digest lists it, saying since when it is clear."""
+    assert _record_clearing(store, 1, "ok") == ["cleared"]
+    d = build_digest(store.engine, charts=False)
+    (a,) = d.new
+    assert (a.experiment, a.clear_since, a.peak) == (MARKUP, T + timedelta(hours=1), "alert") and not d.resolved
+    assert "clearing: ok since 2026-11-20 10:00 UTC" in d.text and "clearing: ok since 2026-11-20 10:00 UTC" in d.html
+    # failing again within the span continues the episode, which is no longer clearing
+    assert _record_clearing(store, 2, "alert") == ["returned"]
+    d = build_digest(store.engine, charts=False)
+    assert [(a.experiment, a.clear_since) for a in d.new] == [(MARKUP, None)] and "clearing:" not in d.text

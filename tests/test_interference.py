@@ -114,19 +114,22 @@ def _crosstab(a, b, n, rho, seed):
     return df.groupby(list(df.columns)).size().rename("units").reset_index()
 
 
-def test_collision_flags_a_correlated_pair_for_both_owners_and_nothing_else():
+def test_collision_flags_a_correlated_pair_once_and_nothing_else():
     exps = [_flat("a"), _flat("b"), _flat("c")]
     cross = pd.concat([_crosstab("a", "b", 5000, 0.2, 1), _crosstab("a", "c", 5000, 0.0, 2),
                        _crosstab("c", "b", 5000, 0.0, 3), _crosstab("a", "zz-not-live", 5000, 1.0, 4)])
     fs = collision_findings(exps, CollisionPull(cross, ()), CHECKS)
     alerts = {(f.experiment, f.scope) for f in fs if f.status == "alert"}
-    assert alerts == {("a", "b"), ("b", "a")}
+    assert alerts == {("a", "b")}  # one pair problem, one finding: under the id that sorts first
     f = next(f for f in fs if f.key == "a\x1fcollision\x1fb")
     assert f.statistics["cramers_v"] == pytest.approx(0.2, abs=0.05) and f.statistics["family_size"] == 3
     assert "independent seed" in f.summary
     summaries = {f.experiment: f for f in fs if f.scope == "pairs"}
     assert set(summaries) == {"a", "b", "c"} and summaries["a"].statistics["dependent_pairs"] == ["b"]
     assert summaries["c"].status == "ok" and summaries["c"].statistics["pairs"] == ["a", "b"]
+    # the other side's summary says where the pair finding is
+    assert summaries["b"].statistics["dependent_pairs"] == ["a"]
+    assert summaries["b"].statistics["reported_under"] == ["a · collision · b"] and "a · collision · b" in summaries["b"].summary
 
 
 def test_collision_needs_enough_overlap_and_survives_empty_input():
@@ -153,7 +156,26 @@ def test_collision_guardrail_interaction():
     guard = MetricConfig(name="errors", kind="mean", bad_direction="increase", table="e", aggregate="count")
     fs = collision_findings(exps, CollisionPull(cross, ((guard, frame),)), CHECKS)
     alerts = {(f.experiment, f.scope) for f in fs if f.status == "alert"}
-    assert alerts == {("a", "b:errors"), ("b", "a:errors")}
+    assert alerts == {("a", "b:errors")}
     f = next(f for f in fs if f.key == "a\x1fcollision\x1fb:errors")
     (c,) = f.statistics["contrasts"]
     assert c["interaction"] == pytest.approx(0.3, abs=0.12) and f.statistics["df"] == 1
+
+
+def test_run_table_names_a_pair_finding_on_both_experiments_lines():
+    """The pair finding lives under one experiment; the run table's line of the other says
+    where it is, so its owner does not read 'all clear'."""
+    import io
+
+    from rich.console import Console
+
+    from monitor.cycle import CycleResult
+    from monitor.report import print_text
+
+    exps = [_flat("a"), _flat("b"), _flat("c")]
+    fs = collision_findings(exps, CollisionPull(_crosstab("a", "b", 5000, 0.2, 1), ()), CHECKS)
+    buf = io.StringIO()
+    print_text(CycleResult("r", T0 + timedelta(days=3), exps, fs, [], []), Console(file=buf, width=200))
+    rows = {ln.split()[0]: ln for ln in buf.getvalue().splitlines() if ln.strip()}
+    assert "ALERT collision·b" in rows["a"] and "(under" not in rows["a"]
+    assert "ALERT collision·a (under a)" in rows["b"] and "all clear" in rows["c"]

@@ -330,3 +330,23 @@ def test_cycle_queues_and_delivers_in_the_run(demo, tmp_path, receiver):
             run_cycle(broken, as_of=DEMO_AS_OF)
     assert len(receiver.log) == 2
     assert "fail" in json.loads(receiver.log[1]["body"])["text"].lower()
+
+
+def test_a_collision_pair_finding_reaches_the_owners_of_both_experiments():
+    """A collision pair problem is one finding, under the experiment whose id sorts first
+    (monitor.collision); a destination routed by owner hears of it from either side."""
+    store = memory_store()
+    cfg = NotifyConfig(webhooks=[
+        WebhookConfig(name="team-a", url="http://127.0.0.1:9/a", route={"owners": ["team-a"]}),
+        WebhookConfig(name="team-b", url="http://127.0.0.1:9/b", route={"owners": ["team-b"]}),
+        WebhookConfig(name="team-c", url="http://127.0.0.1:9/c", route={"owners": ["team-c"]})])
+    metas = {"e1": {"owner": "team-a"}, "e2": {"owner": "team-b"}, "e3": {"owner": "team-c"}}
+    found = [Finding("e1", "collision", "e2:errors", "alert", "errors: the effect depends on 'e2'", {})]
+    evs = _events(store, 0, found)
+    with store.transaction() as conn:
+        keys = enqueue(conn, "run-0", T0, evs, cfg, metas)
+    with store.engine.connect() as conn:
+        rows = {r["destination"]: json.loads(r["payload"]) for r in conn.execute(outbox.select()).mappings()}
+    assert len(keys) == 2 and set(rows) == {"team-a", "team-b"}
+    (ev,) = rows["team-b"]["events"]
+    assert ev["experiment"] == "e1" and ev["experiments"] == ["e1", "e2"]

@@ -83,8 +83,8 @@ def _counts(findings) -> tuple[Counter, Counter]:
         if f.check == "collision":
             if f.scope == "pairs":  # each pair appears in the summaries of both experiments
                 made["collision"] += (len(f.statistics["pairs"]) + f.statistics["interaction_tests"]) / 2
-            elif f.status != "ok":
-                flagged["collision"] += 0.5
+            elif f.status != "ok":  # a pair finding is reported once (monitor.collision)
+                flagged["collision"] += 1
             continue
         if f.check == "srm":
             made["srm_watch"] += 1

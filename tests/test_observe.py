@@ -228,3 +228,34 @@ def test_records_inside_a_cycle_carry_its_run_id_without_the_cli(cfg):
     queries = [x for x in logs if x.get("event") == "query"]
     assert queries and all(q["run_id"] == result.run_id for q in queries)
     assert "run_id" not in logs[-1]
+
+
+def test_status_and_metrics_count_clearing_episodes(tmp_path):
+    """A clearing episode (ok again, not yet for checks.episode_clear_hours) is neither open
+    nor gone: status shows it on its own line and the metrics file has a gauge for it."""
+    from prometheus_client.parser import text_string_to_metric_families
+
+    from monitor import ledger
+    from monitor.findings import Finding
+    from monitor.observe import metrics_text, read_status, render_status_text, status_to_json
+    from monitor.state import StateStore
+
+    url = f"sqlite:///{tmp_path / 's.sqlite'}"
+    store = StateStore(url)
+    t0 = datetime(2026, 11, 20, 9, tzinfo=UTC)
+    for i, status in enumerate(("alert", "ok")):
+        at = t0 + timedelta(hours=i)
+        found = [Finding("e1", "srm", "assigned", status, f"srm {status}"),
+                 Finding("e2", "leakage", "assigned", "warn", "leakage warn")]
+        with store.transaction() as conn:
+            ev = ledger.plan(store.open_alerts(conn), found, ["e1", "e2"], as_of=at, clear_for=timedelta(hours=24))
+            ledger.apply(conn, f"run-{i}", at, found, ev)
+            StateStore.record_run(conn, f"run-{i}", at, at, "ok", {})
+    store.dispose()
+    report = read_status(url)
+    assert report.clearing_alerts == {"srm": 1} and report.open_alerts == {("leakage", "warn"): 1}
+    assert "  srm              clearing  1" in render_status_text(report).splitlines()
+    doc = status_to_json(report)
+    assert doc["clearing_alerts"] == 1 and doc["clearing_alerts_by"] == [{"check": "srm", "count": 1}]
+    families = {f.name: f for f in text_string_to_metric_families(metrics_text(report, checks=["leakage", "srm"]))}
+    assert {s.labels["check"]: s.value for s in families["expwatch_clearing_alerts"].samples} == {"leakage": 0, "srm": 1}

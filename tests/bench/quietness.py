@@ -49,16 +49,22 @@ def _guardrail_metrics(cfg: object) -> dict[str, set[str]]:
     return out
 
 
-def _planted_for(t: dict, planted: list, guardrail_metrics: dict[str, set[str]]) -> object | None:
+def _planted_for(t: dict, planted: list, guardrail_metrics: dict[str, set[str]]) -> list:
+    """The planted problems an episode answers: one, or for a collision pair finding
+    (reported once, under one experiment of the pair) the problem planted on each side."""
+    out = []
     for p in planted:
-        if p.experiment != t["experiment"] or p.check != t["check"]:
+        if p.check != t["check"]:
+            continue
+        if p.experiment != t["experiment"] and not (
+                p.check == "collision" and t["scope"].split(":")[0] == p.experiment):
             continue
         if p.check == "srm" and p.stage and t["scope"] in STAGES and STAGES.index(t["scope"]) < STAGES.index(p.stage):
             continue
         if p.check == "guardrail" and t["scope"].split(":")[0] not in guardrail_metrics.get(p.experiment, ()):
             continue
-        return p
-    return None
+        out.append(p)
+    return out
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -112,7 +118,10 @@ def main(argv: list[str] | None = None) -> int:
         if t["closed_at"]:
             last_close[key] = _time(t["closed_at"])
         p = _planted_for(t, planted, guardrail_metrics)
-        (unplanted if p is None else by_problem[id(p)]).append(t)
+        for q in p:
+            by_problem[id(q)].append(t)
+        if not p:
+            unplanted.append(t)
         print(f"  {'planted' if p else '-':<8} {t['experiment'][:28]:<28} {t['check']:<10} {t['scope'][:24]:<24} "
               f"{t['opened_at'][:16]} {(t['closed_at'] or 'open')[:16]:<16} {t['max_severity']}")
     print("planted problems:")
