@@ -434,7 +434,7 @@ class StateStore:
         at = pd.Index(series["series_id"]).get_indexer(found["series_id"])
         return pd.DataFrame({
             "experiment": series["experiment"].to_numpy(dtype=object)[at],
-            "variant": series["variant"].to_numpy(dtype=object)[at],
+            "variant": series["variant"].astype(object).where(series["variant"].notna(), None).to_numpy()[at],
             "hour": _hour_times(found["hour"]),
             "segment": series["segment"].to_numpy(dtype=object)[at],
             "units": found["units"].to_numpy(dtype="int64"),

@@ -7,6 +7,7 @@ import sqlite3
 from datetime import datetime, timedelta, timezone
 
 import pandas as pd
+import pytest
 import sqlalchemy as sa
 from test_cycle import CONFIG, START, make_warehouse
 
@@ -17,8 +18,9 @@ from monitor.state import (MIGRATIONS, SCHEMA_VERSION, StateStore, count_series,
 
 #: Bytes of pages per stored hourly row, every table and index holding the counts together,
 #: allowed for a small synthetic cycle. Measured: 13.6 bytes per row on the demo (598,586 rows
-#: in 8.2 MB, docs/reliability.md) and about 20 here, where half-empty last pages weigh more;
-#: schema versions 1 to 5 used about 210 on the demo (the segment as JSON text in every row).
+#: in 8.2 MB, docs/reliability.md) and 21.3 here (1,920 rows), where half-empty last pages
+#: weigh more; schema versions 1 to 5 used 147 here and about 220 on the demo (the segment
+#: as JSON text and the hour as text in every row, and a separate index).
 MAX_BYTES_PER_ROW = 40
 
 
@@ -73,7 +75,7 @@ def _v5_store(url: str, rows: pd.DataFrame) -> None:
             conn.execute(sa.delete(meta).where(meta.c.key == "schema_version"))
             conn.execute(sa.insert(meta).values(key="schema_version", value=str(version)))
     with eng.begin() as conn:
-        conn.execute(sa.insert(counts_v5), rows.to_dict("records"))
+        conn.execute(sa.insert(counts_v5), rows.astype(object).where(rows.notna(), None).to_dict("records"))
         conn.execute(sa.insert(watermarks), [{"source": s, "experiment": e, "pulled_to": H0 + timedelta(hours=30)}
                                              for s in ("assigned", "filtered") for e in ("alpha", "beta")])
         conn.execute(sa.insert(runs).values(run_id="r1", started_at=H0 + timedelta(hours=31),
@@ -83,12 +85,22 @@ def _v5_store(url: str, rows: pd.DataFrame) -> None:
 
 def _sorted(frame: pd.DataFrame) -> pd.DataFrame:
     keys = ["experiment", "variant", "hour", "segment"]
-    out = frame[keys + ["units", "leaked"]].astype({"variant": object}).fillna({"variant": "-"})
+    out = frame[keys + ["units", "leaked"]].astype({"variant": object})
+    out["variant"] = [None if pd.isna(v) else v for v in out["variant"]]
+    out = out.fillna({"variant": "-"})
     return out.sort_values(keys).reset_index(drop=True).astype({"units": "int64", "leaked": "int64"})
 
 
 def test_migration_6_converts_a_version_5_store_in_place_keeping_every_count(tmp_path):
-    url = f"sqlite:///{tmp_path / 's.sqlite'}"
+    _migrates_in_place(f"sqlite:///{tmp_path / 's.sqlite'}")
+
+
+@pytest.mark.postgres
+def test_migration_6_on_postgres(pg_url):
+    _migrates_in_place(pg_url)
+
+
+def _migrates_in_place(url: str) -> None:
     rows = _v5_rows()
     _v5_store(url, rows)
     assert StateStore(url, migrate=False).schema_version() == 5
