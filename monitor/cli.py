@@ -598,6 +598,8 @@ def _prune(cfg: Config, args: argparse.Namespace, err: Console) -> int:
     state = StateStore(cfg.state.url or "")
     try:
         out = prune(state, keep, dry_run=args.dry_run)
+        if not args.dry_run and any(out["removed"].values()):
+            state.vacuum()  # SQLite: the file shrinks by what was removed
     finally:
         state.dispose()
     if out["cutoff"] is None:

@@ -100,9 +100,10 @@ class StateConfig(_Model):
     url: str | None = None
     """SQLAlchemy URL of the state store; default a SQLite file beside the config."""
     keep_days: float | None = Field(default=None, gt=0)
-    """Retention for ``expwatch prune``: runs (with their findings, metric snapshots and query
-    costs) and the hourly counts of experiments no run has pulled for this many days before
-    the latest recorded run are removed. None (the default): keep everything."""
+    """Retention, applied by every run (in the transaction that records it) and by ``expwatch
+    prune``: runs (with their findings, metric snapshots and query costs) and the hourly counts
+    of experiments no run has pulled for this many days before the latest recorded run are
+    removed. None (the default): keep everything."""
 
 
 class RegistryColumns(_Model):

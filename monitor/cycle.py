@@ -35,7 +35,7 @@ from monitor.observe import RUN_ID
 from monitor.pull import PulledSource, pull_sources
 from monitor.registry import Experiment, RegistryProblem, experiments_from_frame, experiments_from_inline
 from monitor.spillover import pull_spillover, spillover_findings
-from monitor.state import StateStore
+from monitor.state import StateStore, prune_in
 from monitor.templates import Quoter, registry_context, render
 from monitor.unattributed import pull_unattributed, unattributed_findings
 from monitor.warehouse import Tracer, Warehouse, open_warehouse
@@ -239,6 +239,8 @@ def run_cycle(
                     "experiments": len(live), "findings": len(found), "failed_checks": dict(failures),
                     "queries": [{"name": q.name, "seconds": round(q.seconds, 4), "rows": q.rows} for q in wh.stats],
                 })
+                if cfg.state.keep_days is not None:  # retention, in the transaction that records the run
+                    _log_pruned(prune_in(conn, cfg.state.keep_days))
             result.recorded = True
         if notifying:  # a check that could not run is a monitor-health notice, once, like a failed run
             _deliver(cfg, state, healthy=not failures, cycle=number,
@@ -252,6 +254,15 @@ def run_cycle(
         wh.dispose()
         state.dispose()
         RUN_ID.reset(run_token)
+
+
+def _log_pruned(out: dict) -> None:
+    """One log line for what a run's retention removed (nothing when it removed nothing)."""
+    removed = {k: v for k, v in out["removed"].items() if v}
+    if removed:
+        log.info("state.keep_days: removed what is older than %s UTC: %s", f"{out['cutoff']:%Y-%m-%d %H:%M}",
+                 ", ".join(f"{n} from {t}" for t, n in removed.items()),
+                 extra={"event": "pruned", "removed": removed})
 
 
 def _wants_notifications(cfg: Config) -> bool:

@@ -3,7 +3,7 @@ digest, and small charts, as an HTML e-mail with a plain-text alternative.
 
 Everything comes from the state store: the latest recorded run's findings
 (``expwatch_findings``), the alert ledger (``expwatch_alerts``), the hourly
-counts (``expwatch_hourly_counts``) for the allocation charts, earlier runs'
+counts (``expwatch_counts``) for the allocation charts, earlier runs'
 ``guardrail`` findings for the effect charts, and the mutes. The window of "new"
 and "resolved" alerts runs from the previous digest (recorded by
 :func:`mark_digest_sent`) to the latest run; without a previous digest it is the
@@ -69,7 +69,7 @@ from monitor.outbox import (
     outbox,
     set_state,
 )
-from monitor.state import alerts, counts, findings, runs
+from monitor.state import StateStore, alerts, findings, runs
 
 if TYPE_CHECKING:
     from monitor.charts import Chart
@@ -201,17 +201,13 @@ def _allocation_image(conn: sa.Connection, exp: str, srm: Any) -> Chart | None:
     phases = stats.get("phases") or []
     if not phases:
         return None
-    stmt = (sa.select(counts.c.variant, counts.c.hour, sa.func.sum(counts.c.units).label("units"))
-            .where(counts.c.source == srm["scope"], counts.c.experiment == exp, counts.c.variant.is_not(None))
-            .group_by(counts.c.variant, counts.c.hour))
-    frame = pd.DataFrame([dict(r) for r in conn.execute(stmt).mappings()], columns=["variant", "hour", "units"])
+    frame = StateStore.allocation_counts(conn, srm["scope"], exp)
     if frame.empty:
         return None
     variants = list(phases[-1].get("expected_share", {}).keys())
     frame = frame[frame["variant"].isin(variants)]
     if frame.empty:
         return None
-    frame["hour"] = pd.to_datetime(frame["hour"], utc=True, format="ISO8601")
     table = frame.pivot_table(index="hour", columns="variant", values="units", aggfunc="sum", fill_value=0)
     table = table.reindex(columns=variants, fill_value=0).sort_index()
     hours = table.index

@@ -34,7 +34,7 @@ import pandas as pd
 from monitor.config import Config, SourceConfig
 from monitor.firsts import relation as first_relation
 from monitor.registry import Experiment
-from monitor.state import StateStore
+from monitor.state import COUNT_COLUMNS, StateStore
 from monitor.templates import Quoter, render, source_context
 from monitor.templates import naive_utc as _naive
 from monitor.warehouse import Warehouse
@@ -45,7 +45,6 @@ __all__ = ["PulledSource", "pull_sources", "render_source_sql"]
 log = logging.getLogger("monitor")
 
 _NULL = "\x00null"
-COUNT_COLUMNS = ["experiment", "variant", "hour", "segment", "units", "leaked"]
 
 
 @dataclass(frozen=True)

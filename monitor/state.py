@@ -26,6 +26,7 @@ from contextlib import contextmanager
 from datetime import datetime, timedelta, timezone
 from typing import Any
 
+import numpy as np
 import pandas as pd
 import sqlalchemy as sa
 from sqlalchemy.engine import Connection, Engine
@@ -34,7 +35,7 @@ from sqlalchemy.exc import ArgumentError, IntegrityError, NoSuchModuleError, SQL
 from monitor.errors import ConfigError, StateError
 from monitor.warehouse import safe_url
 
-__all__ = ["SCHEMA_VERSION", "StateStore", "LockHeld", "prune"]
+__all__ = ["SCHEMA_VERSION", "StateStore", "LockHeld", "prune", "prune_in"]
 
 log = logging.getLogger("monitor")
 
@@ -76,8 +77,12 @@ runs = sa.Table(
     sa.Column("outcome", sa.String(16), nullable=False),
     sa.Column("detail", sa.Text),
 )
-counts = sa.Table(
-    "expwatch_hourly_counts", metadata,
+#: The hourly counts as schema versions 1 to 5 kept them: one row per source, experiment,
+#: variant, hour and segment combination, the segment as JSON text in every row, plus a
+#: separate index. Created by migration 1 and converted by migration 6; not in ``metadata``.
+legacy = sa.MetaData()
+counts_v5 = sa.Table(
+    "expwatch_hourly_counts", legacy,
     sa.Column("id", sa.Integer, primary_key=True, autoincrement=True),
     sa.Column("source", sa.String(128), nullable=False),
     sa.Column("experiment", sa.String(512), nullable=False),
@@ -148,7 +153,8 @@ locks = sa.Table(
 
 
 def _migration_1(conn: Connection) -> None:
-    metadata.create_all(conn, tables=[meta, runs, counts, watermarks, findings, alerts, alert_events, locks])
+    metadata.create_all(conn, tables=[meta, runs, watermarks, findings, alerts, alert_events, locks])
+    legacy.create_all(conn, tables=[counts_v5])
 
 
 metric_snapshots = sa.Table(
@@ -205,7 +211,51 @@ def _migration_5(conn: Connection) -> None:
     migration_delivery_leases(conn)
 
 
-MIGRATIONS: list[Callable[[Connection], None]] = [_migration_1, _migration_2, _migration_3, _migration_4, _migration_5]
+#: One row per source, experiment, variant and segment combination whose hourly counts are
+#: stored (a "series"); the segment, canonical JSON of segment name -> value, is stored here once.
+count_series = sa.Table(
+    "expwatch_count_series", metadata,
+    sa.Column("series_id", sa.Integer, primary_key=True, autoincrement=True),
+    sa.Column("source", sa.String(128), nullable=False),
+    sa.Column("experiment", sa.String(512), nullable=False),
+    sa.Column("variant", sa.String(512)),
+    sa.Column("segment", sa.Text, nullable=False),
+    sa.Index("ix_expwatch_count_series_key", "source", "experiment"),
+)
+#: The hourly counts: one row per series and hour, the hour as whole hours since 1970-01-01
+#: 00:00 UTC, stored in key order (SQLite: WITHOUT ROWID), so the key needs no separate index.
+counts = sa.Table(
+    "expwatch_counts", metadata,
+    sa.Column("series_id", sa.Integer, primary_key=True, autoincrement=False),
+    sa.Column("hour", sa.Integer, primary_key=True, autoincrement=False),
+    sa.Column("units", sa.BigInteger, nullable=False),
+    sa.Column("leaked", sa.BigInteger, nullable=False),
+    sqlite_with_rowid=False,
+)
+
+
+def _migration_6(conn: Connection) -> None:
+    """The hourly counts in compact form: the (source, experiment, variant, segment) of each
+    series once in ``expwatch_count_series``, the counts keyed by series id and integer hour
+    in ``expwatch_counts``. Converts ``expwatch_hourly_counts`` one source and experiment at a
+    time (rows of the same key and hour, which the pull never writes, are summed), then drops it."""
+    metadata.create_all(conn, tables=[count_series, counts])
+    if not sa.inspect(conn).has_table(counts_v5.name):
+        return
+    cols = [counts_v5.c.experiment, counts_v5.c.variant, counts_v5.c.hour, counts_v5.c.segment,
+            counts_v5.c.units, counts_v5.c.leaked]
+    keys = conn.execute(sa.select(counts_v5.c.source, counts_v5.c.experiment).distinct()).all()
+    for source, experiment in keys:
+        result = conn.execute(sa.select(*cols).where(counts_v5.c.source == source, counts_v5.c.experiment == experiment))
+        frame = pd.DataFrame.from_records(result.cursor.fetchall() if result.cursor is not None else [],
+                                          columns=COUNT_COLUMNS)
+        frame["hour"] = pd.to_datetime(frame["hour"], utc=True, format="ISO8601")
+        _write_counts(conn, source, frame)
+    counts_v5.drop(conn)
+
+
+MIGRATIONS: list[Callable[[Connection], None]] = [_migration_1, _migration_2, _migration_3, _migration_4, _migration_5,
+                                                  _migration_6]
 SCHEMA_VERSION = len(MIGRATIONS)
 
 
@@ -279,6 +329,20 @@ class StateStore:
                     f"state store {safe_url(self.url)}: migration to schema version {version} failed: {_first(exc)}"
                 ) from exc
             log.info("state store migrated to schema version %d", version)
+        if current < 6 <= SCHEMA_VERSION:
+            self.vacuum()  # the hourly counts were rewritten: give the file back what they no longer need
+
+    def vacuum(self) -> None:
+        """Return the free pages of a SQLite store file to the file system (``VACUUM``); other
+        databases manage their own space. SQLite otherwise reuses freed pages but never shrinks
+        the file. A failure (e.g. another process holding the store) is logged, not raised."""
+        if self.engine.dialect.name != "sqlite" or self.engine.url.database in (None, "", ":memory:"):
+            return
+        try:
+            with self.engine.connect().execution_options(isolation_level="AUTOCOMMIT") as conn:
+                conn.exec_driver_sql("VACUUM")
+        except SQLAlchemyError as exc:
+            log.warning("state store %s: VACUUM failed (the file keeps its free pages): %s", safe_url(self.url), _first(exc))
 
     def dispose(self) -> None:
         self.engine.dispose()
@@ -355,21 +419,27 @@ class StateStore:
     # -- hourly counts -----------------------------------------------------------------
     def read_counts(self, source: str, experiments: Sequence[str], before: datetime | None = None) -> pd.DataFrame:
         """Stored hourly counts (hour as aware UTC) of ``experiments`` in ``source``."""
-        cols = [counts.c.experiment, counts.c.variant, counts.c.hour, counts.c.segment, counts.c.units, counts.c.leaked]
-        names = ["experiment", "variant", "hour", "segment", "units", "leaked"]
-        out: list[Any] = []
-        for chunk in _chunks(list(experiments), 500):
-            stmt = sa.select(*cols).where(counts.c.source == source, counts.c.experiment.in_(chunk))
-            if before is not None:
-                stmt = stmt.where(counts.c.hour < before)
-            with self.engine.connect() as conn:
+        limit = None if before is None else _hour_ceiling(before)
+        rows: list[Any] = []
+        with self.engine.connect() as conn:
+            series = _series_frame(conn, source, experiments)
+            for chunk in _chunks(series["series_id"].tolist(), 500):
+                stmt = sa.select(counts.c.series_id, counts.c.hour, counts.c.units, counts.c.leaked).where(
+                    counts.c.series_id.in_(chunk))
+                if limit is not None:
+                    stmt = stmt.where(counts.c.hour < limit)
                 result = conn.execute(stmt)
-                out.extend(result.cursor.fetchall() if result.cursor is not None else [])
-        frame = pd.DataFrame.from_records(out, columns=names)
-        frame["hour"] = pd.to_datetime(frame["hour"], utc=True, format="ISO8601") if len(frame) else pd.Series([], dtype="datetime64[ns, UTC]")
-        frame["units"] = frame["units"].astype("int64")
-        frame["leaked"] = frame["leaked"].astype("int64")
-        return frame
+                rows.extend(result.cursor.fetchall() if result.cursor is not None else [])
+        found = pd.DataFrame.from_records(rows, columns=["series_id", "hour", "units", "leaked"])
+        at = pd.Index(series["series_id"]).get_indexer(found["series_id"])
+        return pd.DataFrame({
+            "experiment": series["experiment"].to_numpy(dtype=object)[at],
+            "variant": series["variant"].astype(object).where(series["variant"].notna(), None).to_numpy()[at],
+            "hour": _hour_times(found["hour"]),
+            "segment": series["segment"].to_numpy(dtype=object)[at],
+            "units": found["units"].to_numpy(dtype="int64"),
+            "leaked": found["leaked"].to_numpy(dtype="int64"),
+        })
 
     def watermarks(self, source: str) -> dict[str, datetime]:
         with self.engine.connect() as conn:
@@ -379,20 +449,28 @@ class StateStore:
     @staticmethod
     def replace_counts(conn: Connection, source: str, since: datetime, pulled_to: datetime, experiments: Sequence[str], frame: pd.DataFrame) -> None:
         """Replace the stored hours >= ``since`` of ``experiments`` with ``frame``."""
+        first = _hour_ceiling(since)
         for chunk in _chunks(list(experiments), 500):
-            conn.execute(sa.delete(counts).where(counts.c.source == source, counts.c.experiment.in_(chunk), counts.c.hour >= since))
+            of_chunk = sa.select(count_series.c.series_id).where(count_series.c.source == source,
+                                                                 count_series.c.experiment.in_(chunk))
+            conn.execute(sa.delete(counts).where(counts.c.series_id.in_(of_chunk), counts.c.hour >= first))
             conn.execute(sa.delete(watermarks).where(watermarks.c.source == source, watermarks.c.experiment.in_(chunk)))
-        sql = _insert_sql(conn.dialect, counts.name, ["source", "experiment", "variant", "hour", "segment", "units", "leaked"])
-        for lo in range(0, len(frame), 20000):  # rows as Python tuples one slice at a time (peak memory)
-            part = frame.iloc[lo:lo + 20000]
-            conn.exec_driver_sql(sql, list(zip(
-                [source] * len(part), part["experiment"].tolist(),
-                part["variant"].astype(object).where(part["variant"].notna(), None).tolist(),
-                _db_times(part["hour"], conn.dialect), part["segment"].tolist(),
-                part["units"].astype("int64").tolist(), part["leaked"].astype("int64").tolist(),
-            )))
+        _write_counts(conn, source, frame)
         if experiments:
             conn.execute(sa.insert(watermarks), [{"source": source, "experiment": e, "pulled_to": pulled_to} for e in experiments])
+
+    @staticmethod
+    def allocation_counts(conn: Connection, source: str, experiment: str) -> pd.DataFrame:
+        """Units per variant and hour (aware UTC), summed over segments, of one experiment in
+        ``source``; rows without a variant are left out (the digest's allocation chart)."""
+        stmt = (sa.select(count_series.c.variant, counts.c.hour, sa.func.sum(counts.c.units).label("units"))
+                .join_from(counts, count_series, counts.c.series_id == count_series.c.series_id)
+                .where(count_series.c.source == source, count_series.c.experiment == experiment,
+                       count_series.c.variant.is_not(None))
+                .group_by(count_series.c.variant, counts.c.hour))
+        frame = pd.DataFrame(conn.execute(stmt).all(), columns=["variant", "hour", "units"])
+        frame["hour"] = _hour_times(frame["hour"])
+        return frame
 
     # -- runs and findings -------------------------------------------------------------
     @staticmethod
@@ -482,8 +560,13 @@ def prune(store: StateStore, keep_days: float, *, dry_run: bool = False) -> dict
     whole phase. Alerts and their events (the ledger) are kept. Returns the cutoff and
     the rows removed per table; ``dry_run`` counts them and removes nothing.
     """
-    with store.engine.connect() as conn:
-        latest = conn.execute(sa.select(sa.func.max(runs.c.as_of))).scalar()
+    with store.transaction() as conn:
+        return prune_in(conn, keep_days, dry_run=dry_run)
+
+
+def prune_in(conn: Connection, keep_days: float, *, dry_run: bool = False) -> dict[str, Any]:
+    """:func:`prune` inside the caller's transaction (a cycle prunes in the one that records it)."""
+    latest = conn.execute(sa.select(sa.func.max(runs.c.as_of))).scalar()
     removed: dict[str, int] = {}
     if latest is None:
         return {"cutoff": None, "removed": removed}
@@ -491,34 +574,93 @@ def prune(store: StateStore, keep_days: float, *, dry_run: bool = False) -> dict
         latest = datetime.fromisoformat(latest)
     latest = latest.replace(tzinfo=timezone.utc) if latest.tzinfo is None else latest
     cutoff = latest - timedelta(days=keep_days)
-    with store.transaction() as conn:
-        old_runs = sa.select(runs.c.run_id).where(runs.c.as_of < cutoff).scalar_subquery()
-        gone = (sa.select(watermarks.c.source, watermarks.c.experiment)
-                .where(watermarks.c.pulled_to < cutoff))
-        stale = conn.execute(gone).all()
-        targets: list[tuple[str, Any]] = [
-            (t.name, t.c.run_id.in_(old_runs)) for t in (findings, metric_snapshots, query_costs)
-        ]
-        targets.append((counts.name, sa.or_(sa.false(), *(
-            sa.and_(counts.c.source == src, counts.c.experiment == exp) for src, exp in stale))))
-        targets.append((watermarks.name, watermarks.c.pulled_to < cutoff))
-        targets.append((runs.name, runs.c.as_of < cutoff))
-        for name, where in targets:
-            table = metadata.tables[name]
-            if dry_run:
-                removed[name] = int(conn.execute(sa.select(sa.func.count()).select_from(table).where(where)).scalar() or 0)
-            else:
-                removed[name] = int(conn.execute(sa.delete(table).where(where)).rowcount or 0)
+    old_runs = sa.select(runs.c.run_id).where(runs.c.as_of < cutoff).scalar_subquery()
+    stale = conn.execute(sa.select(watermarks.c.source, watermarks.c.experiment)
+                         .where(watermarks.c.pulled_to < cutoff)).all()
+    targets: list[tuple[str, Any]] = [
+        (t.name, t.c.run_id.in_(old_runs)) for t in (findings, metric_snapshots, query_costs)
+    ]
+    stale_series = sa.or_(sa.false(), *(
+        sa.and_(count_series.c.source == src, count_series.c.experiment == exp) for src, exp in stale))
+    targets.append((counts.name, counts.c.series_id.in_(sa.select(count_series.c.series_id).where(stale_series))))
+    targets.append((count_series.name, stale_series))
+    targets.append((watermarks.name, watermarks.c.pulled_to < cutoff))
+    targets.append((runs.name, runs.c.as_of < cutoff))
+    for name, where in targets:
+        table = metadata.tables[name]
+        if dry_run:
+            removed[name] = int(conn.execute(sa.select(sa.func.count()).select_from(table).where(where)).scalar() or 0)
+        else:
+            removed[name] = int(conn.execute(sa.delete(table).where(where)).rowcount or 0)
     return {"cutoff": cutoff, "removed": removed}
 
 
-def _db_times(values: pd.Series, dialect: sa.Dialect) -> list[Any]:
-    """Aware timestamps as the driver stores them for a naive-UTC DateTime column
-    (SQLite keeps text in SQLAlchemy's own format)."""
-    naive = pd.to_datetime(values, utc=True).dt.tz_localize(None)
-    if dialect.name == "sqlite":
-        return naive.dt.strftime("%Y-%m-%d %H:%M:%S.%f").tolist()
-    return [t.to_pydatetime() for t in naive]
+#: The columns of a frame of hourly counts (monitor/pull.py); ``hour`` aware UTC.
+COUNT_COLUMNS = ["experiment", "variant", "hour", "segment", "units", "leaked"]
+_HOUR = pd.Timedelta(hours=1)
+_EPOCH = pd.Timestamp(0, tz="UTC")
+_NO_VARIANT = "\x00none"
+
+
+def _hour_numbers(values: pd.Series) -> np.ndarray:
+    """Aware hour starts as whole hours since 1970-01-01 00:00 UTC (how ``expwatch_counts`` keeps them)."""
+    since = pd.to_datetime(values, utc=True) - _EPOCH
+    off = since[since % _HOUR != pd.Timedelta(0)]
+    if len(off):
+        raise StateError(f"hourly counts: {(_EPOCH + off.iloc[0]).isoformat()} is not the start of an hour")
+    return (since // _HOUR).to_numpy(dtype="int64")
+
+
+def _hour_times(numbers: pd.Series) -> pd.Series:
+    """Whole hours since the epoch back to aware UTC timestamps."""
+    return pd.Series(_EPOCH + pd.to_timedelta(np.asarray(numbers, dtype="int64"), unit="h"), dtype="datetime64[ns, UTC]")
+
+
+def _hour_ceiling(t: datetime) -> int:
+    """The first whole hour (since the epoch) that starts at or after ``t``: hour < t iff number < this."""
+    return -int((_EPOCH - pd.Timestamp(t).tz_convert("UTC")) // _HOUR)
+
+
+def _series_frame(conn: Connection, source: str, experiments: Sequence[str]) -> pd.DataFrame:
+    """The stored series (id, experiment, variant, segment) of ``experiments`` in ``source``."""
+    rows: list[Any] = []
+    for chunk in _chunks(sorted(set(experiments)), 500):
+        rows.extend(conn.execute(
+            sa.select(count_series.c.series_id, count_series.c.experiment, count_series.c.variant, count_series.c.segment)
+            .where(count_series.c.source == source, count_series.c.experiment.in_(chunk))).all())
+    return pd.DataFrame.from_records(rows, columns=["series_id", "experiment", "variant", "segment"])
+
+
+def _write_counts(conn: Connection, source: str, frame: pd.DataFrame) -> None:
+    """Insert the hourly counts of ``frame`` (:data:`COUNT_COLUMNS`) for ``source``, adding the
+    series not stored yet. Rows of the same series and hour are summed."""
+    if frame.empty:
+        return
+    variant = frame["variant"].astype(object).where(frame["variant"].notna(), _NO_VARIANT)
+    codes, combos = pd.MultiIndex.from_arrays(
+        [frame["experiment"].astype(str), variant.astype(str), frame["segment"].astype(str)]).factorize()
+    wanted = [(e, None if v == _NO_VARIANT else v, g) for e, v, g in combos]
+
+    def known() -> dict[tuple[str, str | None, str], int]:
+        stored = _series_frame(conn, source, [w[0] for w in wanted])
+        return {(e, None if pd.isna(v) else v, g): int(i) for i, e, v, g in stored.itertuples(index=False)}
+
+    ids = known()
+    missing = [w for w in wanted if w not in ids]
+    if missing:
+        conn.execute(sa.insert(count_series), [{"source": source, "experiment": e, "variant": v, "segment": g}
+                                               for e, v, g in missing])
+        ids = known()
+    rows = pd.DataFrame({
+        "series_id": np.array([ids[w] for w in wanted], dtype="int64")[codes],
+        "hour": _hour_numbers(frame["hour"]),
+        "units": frame["units"].to_numpy(dtype="int64"),
+        "leaked": frame["leaked"].to_numpy(dtype="int64"),
+    }).groupby(["series_id", "hour"], sort=True, as_index=False).sum()
+    sql = _insert_sql(conn.dialect, counts.name, ["series_id", "hour", "units", "leaked"])
+    for lo in range(0, len(rows), 20000):  # rows as Python tuples one slice at a time (peak memory)
+        part = rows.iloc[lo:lo + 20000]
+        conn.exec_driver_sql(sql, list(zip(*(part[c].tolist() for c in ("series_id", "hour", "units", "leaked")))))
 
 
 def _insert_sql(dialect: sa.Dialect, table: str, columns: list[str]) -> str:

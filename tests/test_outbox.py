@@ -237,7 +237,7 @@ def test_enqueue_creates_missing_tables_inside_the_run_transaction(tmp_path):
     s = StateStore(f"sqlite:///{tmp_path / 's.sqlite'}")
     with s.engine.begin() as c:  # a store whose notification tables are gone
         for name in [t for t in sa.inspect(c).get_table_names() if t.startswith("expwatch_") and t not in
-                     {"expwatch_meta", "expwatch_runs", "expwatch_hourly_counts", "expwatch_watermarks",
+                     {"expwatch_meta", "expwatch_runs", "expwatch_counts", "expwatch_count_series", "expwatch_watermarks",
                       "expwatch_findings", "expwatch_alerts", "expwatch_alert_events", "expwatch_locks",
                       "expwatch_metric_snapshots"}]:
             c.execute(sa.text(f'DROP TABLE "{name}"'))
