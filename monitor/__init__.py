@@ -6,7 +6,7 @@ plus the command line's JSON documents::
 
     from monitor import api
     run = api.cycle("expwatch.yaml", dry_run=True)
-    run.findings[run.findings.severity >= 2]
+    run.findings[run.findings.severity >= "alert"]
 """
 
 from __future__ import annotations

@@ -238,12 +238,19 @@ def _run(cfg: Config, args: argparse.Namespace, console: Console, err: Console, 
     t0 = time.monotonic()
     status = None
     if err.is_terminal and fmt == "text" and not quiet and not json_logs:
-        status = err.status("starting", spinner="dots")
+        from rich.live import Live
+        from rich.spinner import Spinner
+
+        from monitor.report import CycleProgress
+
+        progress = CycleProgress()  # redrawn 4 times a second: its clock runs while a step computes
+        status = Live(Spinner("dots", text=progress), console=err, refresh_per_second=4, transient=True)
         status.start()
 
     def on_step(name: str) -> None:
         if status is not None:
-            status.update(f"querying {name} ({time.monotonic() - t0:.1f}s)")
+            progress.step(name)
+            status.refresh()
         else:
             log.info("step: %s", name, extra={"event": "step", "step": name})
 
@@ -299,17 +306,28 @@ def _write_metrics(cfg: Config, args: argparse.Namespace, *, ok: bool) -> None:
         write_metrics_file(path, cfg.state.url or "", last_attempt_ok=ok)
 
 
-def _setup_json_logging(level: int) -> None:
+def _setup_json_logging(level: int, session_id: str | None = None) -> None:
+    """JSON lines on stderr. With ``session_id`` (``serve``), a line logged outside any
+    cycle carries it as ``run_id`` and every line as ``serve_id``; the scheduler library's
+    own warnings (a missed run) go out as JSON lines too."""
     from monitor.observe import JsonFormatter, RunContextFilter
 
     root = logging.getLogger("monitor")
     root.handlers.clear()
     handler = logging.StreamHandler(sys.stderr)
     handler.setFormatter(JsonFormatter())
-    handler.addFilter(RunContextFilter())
+    context = RunContextFilter()
+    handler.addFilter(context)
     root.addHandler(handler)
     root.setLevel(level)
     root.propagate = False
+    if session_id is not None:
+        context.context.update(run_id=session_id, serve_id=session_id)
+        scheduler = logging.getLogger("apscheduler")
+        scheduler.handlers.clear()
+        scheduler.addHandler(handler)
+        scheduler.setLevel(logging.WARNING)
+        scheduler.propagate = False
 
 
 def _serve(cfg: Config, args: argparse.Namespace) -> int:
@@ -785,16 +803,18 @@ def main(argv: Sequence[str] | None = None) -> int:
     console = Console(width=None if tty else _UNWRAPPED, highlight=False, soft_wrap=not tty)
     err = Console(stderr=True, highlight=False, soft_wrap=not sys.stderr.isatty())
     _setup_logging(args.verbose, err)
+    # run: the cycle's id; serve: the session's id (each cycle's lines carry that cycle's own id)
+    args.run_id = str(uuid.uuid4()) if args.command in ("run", "serve") else None
     if getattr(args, "log_format", "text") == "json":
-        _setup_json_logging(logging.DEBUG if args.verbose else logging.INFO)
+        _setup_json_logging(logging.DEBUG if args.verbose else logging.INFO,
+                            args.run_id if args.command == "serve" else None)
     elif args.command in ("serve", "replay"):
         logging.getLogger("monitor").setLevel(logging.INFO)  # a long-running command says what it does
-    if args.command != "run":
+    if args.run_id is None:
         return _dispatch(args, console, err)
     from monitor.observe import run_context
 
-    args.run_id = str(uuid.uuid4())
-    with run_context(args.run_id):  # the run's id on every log line from here on, errors included
+    with run_context(args.run_id):  # the id on every log line from here on, errors included
         return _dispatch(args, console, err)
 
 

@@ -40,7 +40,7 @@ from monitor.templates import Quoter, registry_context, render
 from monitor.unattributed import pull_unattributed, unattributed_findings
 from monitor.warehouse import Tracer, Warehouse, open_warehouse
 
-__all__ = ["METRIC_CHECKS", "CycleResult", "error_findings", "load_registry", "metric_findings", "run_cycle"]
+__all__ = ["CYCLE_STEPS", "METRIC_CHECKS", "CycleResult", "error_findings", "load_registry", "metric_findings", "run_cycle"]
 
 log = logging.getLogger("monitor")
 
@@ -123,6 +123,12 @@ def metric_findings(
 
 #: The checks :func:`metric_findings` runs, in order (a failed one is reported by :func:`error_findings`).
 METRIC_CHECKS = ("guardrail", "novelty", "spillover", "collision")
+
+#: The steps of a cycle, in order, as ``on_step`` names them (the part before ``[``) and as a
+#: person reads them; a step with nothing to do (no metric configured) is passed over.
+CYCLE_STEPS = (("registry", "reading the registry"), ("assignments", "pulling assignment counts"),
+               ("checks", "allocation checks"), ("metric", "guardrail metrics"), ("novelty", "novelty"),
+               ("spillover", "spillover"), ("collision", "collision"), ("record", "recording the run"))
 
 
 def error_findings(live: list[Experiment], failures: dict[str, str]) -> list[Finding]:
@@ -225,6 +231,8 @@ def run_cycle(
                 result.note = (f"--as-of is earlier than the latest recorded run ({last:%Y-%m-%d %H:%M} UTC): "
                                "computed as a backtest, nothing was recorded") if last else "backtest: nothing was recorded"
                 return result
+            if on_step:
+                on_step("record")
             with state.transaction() as conn:
                 for s in sources:
                     StateStore.replace_counts(conn, s.name, s.since, as_of, s.experiments, s.fresh)

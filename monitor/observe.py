@@ -105,20 +105,21 @@ def run_context(run_id: str) -> Iterator[str]:
 
 
 class RunContextFilter(logging.Filter):
-    """Adds the fields in :attr:`context`, and the ``run_id`` of the current
-    :func:`run_context`, to every record that lacks them."""
+    """Adds the ``run_id`` of the current :func:`run_context`, then the fields in
+    :attr:`context` (defaults: ``expwatch serve`` puts its session id there as
+    ``run_id`` and ``serve_id``), to every record that lacks them."""
 
     def __init__(self) -> None:
         super().__init__()
         self.context: dict[str, Any] = {}
 
     def filter(self, record: logging.LogRecord) -> bool:
-        for k, v in self.context.items():
-            if not hasattr(record, k):
-                setattr(record, k, v)
         run_id = RUN_ID.get()
         if run_id is not None and not hasattr(record, "run_id"):
             record.run_id = run_id
+        for k, v in self.context.items():
+            if not hasattr(record, k):
+                setattr(record, k, v)
         return True
 
 

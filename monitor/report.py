@@ -7,17 +7,19 @@ output"); ``tests/test_report.py`` checks that it matches that documentation.
 from __future__ import annotations
 
 import json
+import time
 from collections import defaultdict
+from collections.abc import Callable
 from typing import Any
 
 from rich.console import Console
 from rich.table import Table
 from rich.text import Text
 
-from monitor.cycle import CycleResult
+from monitor.cycle import CYCLE_STEPS, CycleResult
 from monitor.findings import clean_json
 
-__all__ = ["to_json", "to_json_text", "print_text"]
+__all__ = ["CycleProgress", "to_json", "to_json_text", "print_text"]
 
 JSON_VERSION = 1
 _RANK = {"ok": 0, "warn": 1, "alert": 2}
@@ -147,3 +149,33 @@ def _print_text(result: CycleResult, console: Console) -> None:
 def _where(f: Any) -> str:
     """``check·scope`` (the stage, metric or pair), or the check alone for registry problems."""
     return f.check if f.scope == "registry" else f"{f.check}·{f.scope}"
+
+
+class CycleProgress:
+    """The text beside the terminal spinner: ``step 4 of 8: guardrail metrics (render_ms) · 12s``.
+
+    :meth:`step` takes the cycle's ``on_step`` names; the clock is read whenever the spinner
+    redraws (``__rich__``), so the seconds go on counting while a step computes, between
+    two ``on_step`` calls.
+    """
+
+    def __init__(self, clock: Callable[[], float] = time.monotonic) -> None:
+        self._clock = clock
+        self._t0 = clock()
+        self._index = {name: i for i, (name, _) in enumerate(CYCLE_STEPS)}
+        self.number = 0
+        self.what = "starting"
+
+    def step(self, name: str) -> None:
+        base, _, detail = name.partition("[")
+        i = self._index.get(base)
+        if i is None:
+            self.what = name
+            return
+        self.number = i + 1
+        self.what = CYCLE_STEPS[i][1] + (f" ({detail.rstrip(']')})" if detail else "")
+
+    def __rich__(self) -> Text:
+        secs = int(self._clock() - self._t0)
+        where = f"step {self.number} of {len(CYCLE_STEPS)}: " if self.number else ""
+        return Text(f"{where}{self.what} · {secs // 60}:{secs % 60:02d}" if secs >= 60 else f"{where}{self.what} · {secs}s")

@@ -26,6 +26,7 @@ import logging
 import signal
 import threading
 import time
+import uuid
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
@@ -53,7 +54,7 @@ class CycleOutcome:
     outcome : str
         ``"ok"``, ``"skipped"`` (lock held, or no digest module) or ``"failed"``.
     run_id : str or None
-        The cycle's run id, when one ran.
+        The cycle's run id (also of a skipped or failed cycle: its log lines carry it).
     seconds : float
     message : str
         One line for the log.
@@ -84,6 +85,14 @@ def check_job(cfg: Any, *, metrics_file: str | None = None,
         ``skipped`` when another cycle holds the state store lock, ``failed``
         (logged as an error with its one-line cause) when the cycle raised.
     """
+    from monitor.observe import run_context
+
+    run_id = str(uuid.uuid4())
+    with run_context(run_id):  # every line of the job carries the cycle's id, a skipped or failed one's too
+        return _check_job(cfg, run_id, metrics_file, run)
+
+
+def _check_job(cfg: Any, run_id: str, metrics_file: str | None, run: Callable[..., Any] | None) -> CycleOutcome:
     from monitor.errors import MonitorError
     from monitor.observe import log_cycle, write_metrics_file
     from monitor.state import LockHeld
@@ -93,17 +102,17 @@ def check_job(cfg: Any, *, metrics_file: str | None = None,
     t0 = time.monotonic()
     ok: bool | None = None
     try:
-        result = run(cfg, wait_seconds=0.0)
+        result = run(cfg, wait_seconds=0.0, run_id=run_id)
     except LockHeld as exc:
-        out = CycleOutcome("checks", "skipped", None, time.monotonic() - t0, f"cycle skipped: {exc}")
+        out = CycleOutcome("checks", "skipped", run_id, time.monotonic() - t0, f"cycle skipped: {exc}")
         log.warning(out.message, extra={"event": "cycle_skipped"})
     except MonitorError as exc:
         ok = False
-        out = CycleOutcome("checks", "failed", None, time.monotonic() - t0, f"cycle failed: {exc}")
+        out = CycleOutcome("checks", "failed", run_id, time.monotonic() - t0, f"cycle failed: {exc}")
         log.error(out.message, extra={"event": "cycle_failed"})
     except Exception as exc:  # a bug: keep the scheduler alive, log it with its traceback
         ok = False
-        out = CycleOutcome("checks", "failed", None, time.monotonic() - t0, f"cycle failed: internal error: {type(exc).__name__}: {exc}")
+        out = CycleOutcome("checks", "failed", run_id, time.monotonic() - t0, f"cycle failed: internal error: {type(exc).__name__}: {exc}")
         log.exception(out.message, extra={"event": "cycle_failed"})
     else:
         ok = True

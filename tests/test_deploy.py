@@ -322,3 +322,22 @@ def test_constraints_pin_every_runtime_dependency():
     for req in wanted:
         name = re.sub(r"[-_.]+", "-", re.match(r"[A-Za-z0-9_.-]+", req).group(0)).lower()
         assert name in pins, name
+
+
+def test_host_setup_creates_what_the_units_and_the_crontab_use():
+    """deploy/README.md's host setup (tried by hand, docs/deploy-tested.md) creates every
+    directory the units may write and the virtual environment whose expwatch they start."""
+    readme = (DEPLOY / "README.md").read_text(encoding="utf-8")
+    setup = readme.split("## Host setup", 1)[1].split("```bash", 1)[1].split("```", 1)[0]
+    created = set(re.findall(r"install -d .*?(/\S+)$", setup, re.M))
+    venv = re.search(r"-m venv (\S+)", setup).group(1)
+    assert re.search(rf"{re.escape(venv)}/bin/pip install", setup) and "charts" in setup  # digest --send needs charts
+    for unit in SERVICES:
+        text = (DEPLOY / unit).read_text(encoding="utf-8")
+        (writable,) = re.findall(r"^ReadWritePaths=(.*)$", text, re.M)
+        assert set(writable.split()) <= created, unit
+        assert re.search(r"^ExecStart=(\S+)", text, re.M).group(1) == f"{venv}/bin/expwatch", unit
+        assert re.search(r"^WorkingDirectory=(\S+)", text, re.M).group(1) in created, unit
+    cron = (DEPLOY / "crontab.example").read_text(encoding="utf-8")
+    assert set(re.findall(r"(/\S+)/bin/expwatch", cron)) == {venv}
+    assert {str(Path(p).parent) for p in re.findall(r"(/var/lib/\S+?)(?:[;\s]|$)", cron)} <= created

@@ -259,3 +259,64 @@ def test_status_and_metrics_count_clearing_episodes(tmp_path):
     assert doc["clearing_alerts"] == 1 and doc["clearing_alerts_by"] == [{"check": "srm", "count": 1}]
     families = {f.name: f for f in text_string_to_metric_families(metrics_text(report, checks=["leakage", "srm"]))}
     assert {s.labels["check"]: s.value for s in families["expwatch_clearing_alerts"].samples} == {"leakage": 0, "srm": 1}
+
+
+def test_spinner_counts_steps_and_its_clock_runs_while_a_step_computes():
+    from rich.console import Console
+
+    from monitor.cycle import CYCLE_STEPS
+    from monitor.report import CycleProgress
+
+    now = [100.0]
+    progress = CycleProgress(clock=lambda: now[0])
+
+    def shown() -> str:
+        buf = io.StringIO()
+        Console(file=buf, width=100, color_system=None).print(progress)
+        return buf.getvalue().strip()
+
+    assert shown() == "starting · 0s"
+    progress.step("checks")
+    assert shown() == f"step 3 of {len(CYCLE_STEPS)}: allocation checks · 0s"
+    now[0] += 7.4  # no new step: the next redraw reads the clock again
+    assert shown() == f"step 3 of {len(CYCLE_STEPS)}: allocation checks · 7s"
+    progress.step("metric[render_ms]")
+    now[0] += 60
+    assert shown() == f"step 4 of {len(CYCLE_STEPS)}: guardrail metrics (render_ms) · 1:07"
+
+
+def test_run_in_a_terminal_shows_step_n_of_m(cfg):
+    """``expwatch run`` with standard error on a pseudo-terminal: the spinner names each step
+    as 'step N of M', in order, and is erased at the end (transient)."""
+    import os
+    import pty
+    import re
+
+    from monitor.cycle import CYCLE_STEPS
+
+    master, slave = pty.openpty()
+    env = dict(os.environ, TERM="xterm-256color", COLUMNS="120")
+    env.pop("NO_COLOR", None)
+    p = subprocess.Popen([sys.executable, "-P", "-m", "monitor", "run", "--config", str(cfg.path), "--as-of",
+                          (START + timedelta(hours=100)).isoformat()], stdin=subprocess.DEVNULL, stdout=subprocess.PIPE,
+                         stderr=slave, env=env)
+    os.close(slave)
+    chunks = []
+    while True:
+        try:
+            data = os.read(master, 65536)
+        except OSError:  # EIO: the child closed the terminal
+            break
+        if not data:
+            break
+        chunks.append(data)
+    out = p.communicate(timeout=120)[0].decode()
+    os.close(master)
+    assert p.returncode == 0 and "tilted" in out  # the table went to standard output (a pipe)
+    screen = b"".join(chunks).decode(errors="replace")
+    m = len(CYCLE_STEPS)
+    steps = [int(n) for n in re.findall(rf"step (\d) of {m}: ", screen)]
+    assert steps and steps == sorted(steps), steps
+    for text in ("step 1 of {m}: reading the registry", "step 2 of {m}: pulling assignment counts (assigned)",
+                 "step 3 of {m}: allocation checks", "step {m} of {m}: recording the run"):
+        assert text.format(m=m) in screen, text

@@ -329,3 +329,50 @@ def test_json_formatter_and_run_context_filter():
     assert first["message"] == "query registry" and first["run_id"] == "r-1" and first["rows"] == 3
     assert first["bad"] is None and first["at"] == "2026-11-30T09:00:00+00:00" and first["level"] == "info"
     assert second["run_id"] == "r-2"  # a record's own field wins over the context
+
+
+def test_every_serve_json_line_carries_a_run_id(wdir, tmp_path):
+    """``serve --log-format json``: a line of a cycle carries that cycle's run id (a skipped
+    cycle's too), a line of the scheduler itself the session's id; every line has ``serve_id``."""
+    conf = tmp_path / "c.yaml"
+    state = tmp_path / "state.sqlite"
+    conf.write_text(CONFIG.replace('"duckdb:///w.duckdb"', f'"duckdb:///{wdir / "w.duckdb"}"')
+                    + f'state: {{url: "sqlite:///{state}"}}\nschedule: {{interval_seconds: 2, digest: null}}\n')
+    store = StateStore(f"sqlite:///{state}")
+    held = store.lock()
+    held.__enter__()  # the first cycle finds the lock taken and skips
+    p = subprocess.Popen([sys.executable, "-P", "-m", "monitor", "serve", "--config", str(conf), "--log-format", "json"],
+                         stderr=subprocess.PIPE, stdout=subprocess.PIPE, text=True)
+    raw: list[str] = []
+    try:
+        deadline = time.monotonic() + 120
+        while time.monotonic() < deadline:
+            line = p.stderr.readline()
+            if not line:
+                break
+            raw.append(line)
+            event = json.loads(line).get("event")
+            if event == "cycle_skipped" and held is not None:
+                held.__exit__(None, None, None)
+                held = None
+            if event == "cycle":
+                break
+    finally:
+        if held is not None:
+            held.__exit__(None, None, None)
+        p.send_signal(signal.SIGTERM)
+        rest = p.communicate(timeout=120)[1]
+        store.dispose()
+    assert p.returncode == 0
+    lines = [json.loads(x) for x in raw + rest.splitlines() if x.strip()]  # every line is one JSON object
+    assert all(x.get("run_id") and x.get("serve_id") for x in lines), [x for x in lines if not x.get("run_id")]
+    (session,) = {x["serve_id"] for x in lines}
+    by_event = {x.get("event"): x for x in lines}
+    for own in ("serve_started", "serve_signal", "serve_stopped"):
+        assert by_event[own]["run_id"] == session
+    skipped, cycle = by_event["cycle_skipped"], by_event["cycle"]
+    assert session != skipped["run_id"] != cycle["run_id"] != session
+    recorded = [r.run_id for r in read_status(f"sqlite:///{state}").runs]
+    assert cycle["run_id"] in recorded and skipped["run_id"] not in recorded
+    queries = [x for x in lines if x.get("event") == "query"]
+    assert queries and {x["run_id"] for x in queries} <= set(recorded)
